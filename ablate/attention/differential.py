@@ -1,0 +1,160 @@
+"""Differential attention: the difference of two softmax maps, scaled by lambda."""
+
+from __future__ import annotations
+
+import math
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from .common import causal_softmax, require_divisible, require_positive_int
+from .rotary import Rotary
+
+LAMBDA_MODES = ("learned", "fixed")
+
+
+def depth_lambda_init(layer: int) -> float:
+    """lambda_init = 0.8 - 0.6 * exp(-0.3 * (layer - 1)) for ``layer`` counted from 1."""
+    return 0.8 - 0.6 * math.exp(-0.3 * (layer - 1))
+
+
+def resolve_lambda_init(lambda_init, layer_index: int) -> float:
+    if lambda_init == "depth":
+        return depth_lambda_init(layer_index + 1)
+    if isinstance(lambda_init, bool) or not isinstance(lambda_init, (int, float)):
+        raise ValueError(f"lambda_init={lambda_init!r} must be 'depth' or a number in (0, 1)")
+    if not 0.0 < float(lambda_init) < 1.0:
+        raise ValueError(f"lambda_init={lambda_init!r} must be 'depth' or a number in (0, 1)")
+    return float(lambda_init)
+
+
+class DifferentialAttention(nn.Module):
+    r"""Causal differential attention with rotary positions.
+
+    Each of the :math:`h = d_{model} / (2d)` heads has two query/key groups of width :math:`d`
+    (= ``head_dim``) and values of width :math:`2d`:
+
+    .. math::
+        O_i = \left(\mathrm{softmax}\!\left(\frac{Q_{i,1} K_{i,1}^\top}{\sqrt{d}}\right)
+              - \lambda\, \mathrm{softmax}\!\left(\frac{Q_{i,2} K_{i,2}^\top}{\sqrt{d}}\right)\right) V_i
+
+        \lambda = \exp(\lambda_{q1} \cdot \lambda_{k1}) - \exp(\lambda_{q2} \cdot \lambda_{k2}) + \lambda_{init}
+
+        \mathrm{out} = [\,(1 - \lambda_{init})\,\mathrm{RMSNorm}(O_1); \dots;
+                        (1 - \lambda_{init})\,\mathrm{RMSNorm}(O_h)\,]\, W_O
+
+    with causal masks on both maps. The four lambda vectors (length ``head_dim``) are shared by
+    the heads of a layer. With ``lambda_init='depth'``,
+    :math:`\lambda_{init} = 0.8 - 0.6\exp(-0.3(l - 1))` for layer :math:`l` counted from 1.
+    The q/k/v/out maps have the same shapes as standard attention at the same ``d_model``, so the
+    parameter counts match up to the lambda vectors.
+
+    Args:
+        d_model: model width; a multiple of ``2 * head_dim``.
+        layer_index: position of the block in the stack, from 0 (sets the depth schedule).
+        n_layers: depth of the stack.
+        head_dim: width of each query/key group; values are ``2 * head_dim`` wide.
+        head_norm: per-head RMSNorm followed by the ``(1 - lambda_init)`` multiplier; when off,
+            both are skipped and the head outputs are concatenated as they are.
+        lambda_mode: ``'learned'`` (the re-parameterisation above) or ``'fixed'`` (lambda stays at
+            lambda_init; no lambda parameters).
+        lambda_init: ``'depth'`` for the schedule above, or a number in (0, 1).
+        lambda_std: standard deviation of the normal init of the lambda vectors (our choice).
+        rope_base: wavelength base of the rotary positions.
+
+    Shapes: ``forward``: ``[batch, time, d_model] -> [batch, time, d_model]``;
+    ``attention_weights``: ``[batch, time, d_model] -> [batch, heads, time, time]`` (the
+    difference map, whose rows sum to ``1 - lambda``).
+    """
+
+    def __init__(
+        self,
+        d_model: int,
+        layer_index: int = 0,
+        n_layers: int = 1,
+        head_dim: int = 32,
+        head_norm: bool = True,
+        lambda_mode: str = "learned",
+        lambda_init="depth",
+        lambda_std: float = 0.1,
+        rope_base: float = 10000.0,
+    ):
+        super().__init__()
+        require_positive_int("head_dim", head_dim)
+        require_divisible("d_model", d_model, 2 * head_dim, f"2 * head_dim = {2 * head_dim}")
+        if lambda_mode not in LAMBDA_MODES:
+            raise ValueError(f"lambda_mode={lambda_mode!r} must be one of {', '.join(LAMBDA_MODES)}")
+        self.d_model, self.head_dim = d_model, head_dim
+        self.n_heads = d_model // (2 * head_dim)
+        self.layer_index, self.n_layers = layer_index, n_layers
+        self.lambda_mode = lambda_mode
+        self.lambda_init = resolve_lambda_init(lambda_init, layer_index)
+        self.q_proj = nn.Linear(d_model, d_model, bias=False)
+        self.k_proj = nn.Linear(d_model, d_model, bias=False)
+        self.v_proj = nn.Linear(d_model, d_model, bias=False)
+        self.out_proj = nn.Linear(d_model, d_model, bias=False)
+        self.rotary = Rotary(head_dim, rope_base)
+        self.use_head_norm = bool(head_norm)
+        self.head_norm = nn.RMSNorm(2 * head_dim, eps=1e-5, elementwise_affine=False) if head_norm else None
+        if lambda_mode == "learned":
+            self.lambda_q1 = nn.Parameter(torch.randn(head_dim) * lambda_std)
+            self.lambda_k1 = nn.Parameter(torch.randn(head_dim) * lambda_std)
+            self.lambda_q2 = nn.Parameter(torch.randn(head_dim) * lambda_std)
+            self.lambda_k2 = nn.Parameter(torch.randn(head_dim) * lambda_std)
+
+    def lambda_value(self) -> torch.Tensor:
+        """The current lambda as a 0-d tensor."""
+        if self.lambda_mode == "fixed":
+            return torch.tensor(self.lambda_init)
+        return (
+            torch.exp(torch.dot(self.lambda_q1, self.lambda_k1))
+            - torch.exp(torch.dot(self.lambda_q2, self.lambda_k2))
+            + self.lambda_init
+        )
+
+    def _queries_keys(self, x: torch.Tensor) -> tuple[torch.Tensor, ...]:
+        """Rotated queries and keys of both groups, each ``[batch, heads, time, head_dim]``."""
+        b, n, _ = x.shape
+        q = self.rotary(self.q_proj(x).view(b, n, 2 * self.n_heads, self.head_dim).transpose(1, 2))
+        k = self.rotary(self.k_proj(x).view(b, n, 2 * self.n_heads, self.head_dim).transpose(1, 2))
+        h = self.n_heads
+        return q[:, :h], k[:, :h], q[:, h:], k[:, h:]
+
+    def _values(self, x: torch.Tensor) -> torch.Tensor:
+        b, n, _ = x.shape
+        return self.v_proj(x).view(b, n, self.n_heads, 2 * self.head_dim).transpose(1, 2)
+
+    def _finish(self, o: torch.Tensor, shape) -> torch.Tensor:
+        if self.head_norm is not None:
+            o = self.head_norm(o) * (1.0 - self.lambda_init)
+        return self.out_proj(o.transpose(1, 2).reshape(shape))
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        q1, k1, q2, k2 = self._queries_keys(x)
+        v = self._values(x)
+        # (A1 - lambda A2) V = A1 V - lambda A2 V: two fused kernels, no attention matrix kept.
+        o1 = F.scaled_dot_product_attention(q1, k1, v, is_causal=True)
+        o2 = F.scaled_dot_product_attention(q2, k2, v, is_causal=True)
+        lam = self.lambda_value().to(o1.dtype)
+        return self._finish(o1 - lam * o2, x.shape)
+
+    def attention_weights(self, x: torch.Tensor) -> torch.Tensor:
+        q1, k1, q2, k2 = self._queries_keys(x)
+        scale = 1.0 / math.sqrt(self.head_dim)
+        a1 = causal_softmax(q1 @ k1.transpose(-2, -1) * scale)
+        a2 = causal_softmax(q2 @ k2.transpose(-2, -1) * scale)
+        return a1 - self.lambda_value().to(a1.dtype) * a2
+
+    def attention_logits(self, x: torch.Tensor) -> torch.Tensor:
+        """Pre-softmax scores of both groups, ``[batch, 2 * heads, time, time]``."""
+        q1, k1, q2, k2 = self._queries_keys(x)
+        q, k = torch.cat([q1, q2], 1), torch.cat([k1, k2], 1)
+        return q @ k.transpose(-2, -1) / math.sqrt(self.head_dim)
+
+    def core_flops_per_token(self, seq_len: int) -> float:
+        """Forward FLOPs per token of the score and value products over a full window:
+        scores for 2h query groups of width d, and two value products of width 2d per head."""
+        scores = 2.0 * seq_len * (2 * self.n_heads * self.head_dim)
+        values = 2 * (2.0 * seq_len * (self.n_heads * 2 * self.head_dim))
+        return scores + values

@@ -1,0 +1,117 @@
+"""The tiny decoder that every ablation trains.
+
+``logits = W_head * RMSNorm(h_L)``, where ``h_0 = E[ids]`` and each of the L pre-norm blocks computes
+
+    h' = h + attention(RMSNorm(h))
+    h_next = h' + W_down (silu(W_gate RMSNorm(h')) * W_up RMSNorm(h'))      (SwiGLU, Shazeer 2020)
+
+Initialisation: every linear map and the embedding ~ N(0, 0.02^2); the two maps that write into
+the residual stream (attention ``out_proj`` and SwiGLU ``down``) use 0.02 / sqrt(2 L) so the
+residual variance does not grow with depth (common practice, no source). Other parameters keep
+the block's own initialisation. The model knows nothing of configs: it takes an attention factory.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Callable
+
+import torch
+from torch import nn
+
+AttentionFactory = Callable[[int], nn.Module]
+
+
+def swiglu_hidden(d_model: int, multiple_of: int = 8) -> int:
+    """About 8/3 d_model, rounded up to a multiple of ``multiple_of``."""
+    hidden = int(math.ceil(8 * d_model / 3))
+    return multiple_of * int(math.ceil(hidden / multiple_of))
+
+
+class SwiGLU(nn.Module):
+    def __init__(self, d_model: int, hidden: int):
+        super().__init__()
+        self.gate = nn.Linear(d_model, hidden, bias=False)
+        self.up = nn.Linear(d_model, hidden, bias=False)
+        self.down = nn.Linear(hidden, d_model, bias=False)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.down(nn.functional.silu(self.gate(x)) * self.up(x))
+
+
+class Block(nn.Module):
+    def __init__(self, d_model: int, attention: nn.Module, ffn_hidden: int, norm_eps: float = 1e-5):
+        super().__init__()
+        self.attn_norm = nn.RMSNorm(d_model, eps=norm_eps)
+        self.attention = attention
+        self.ffn_norm = nn.RMSNorm(d_model, eps=norm_eps)
+        self.ffn = SwiGLU(d_model, ffn_hidden)
+
+    def forward(self, h: torch.Tensor) -> torch.Tensor:
+        h = h + self.attention(self.attn_norm(h))
+        return h + self.ffn(self.ffn_norm(h))
+
+
+class Decoder(nn.Module):
+    """Token embedding, ``n_layers`` pre-norm blocks, final RMSNorm, output head.
+
+    Args:
+        vocab_size: number of token ids.
+        d_model: residual width.
+        n_layers: number of blocks.
+        seq_len: the longest window the model is trained on (recorded, used by accounting).
+        attention_factory: ``layer_index -> attention module`` (layer_index from 0).
+        ffn_hidden: SwiGLU hidden size; default about 8/3 d_model.
+        tie_embeddings: share the output head with the token embedding.
+        init_std: standard deviation of the normal initialisation.
+
+    Shapes: ``ids [batch, time]`` (int64) -> ``logits [batch, time, vocab_size]``.
+    """
+
+    def __init__(
+        self,
+        vocab_size: int,
+        d_model: int,
+        n_layers: int,
+        seq_len: int,
+        attention_factory: AttentionFactory,
+        ffn_hidden: int | None = None,
+        tie_embeddings: bool = True,
+        init_std: float = 0.02,
+    ):
+        super().__init__()
+        for name, value in (("vocab_size", vocab_size), ("d_model", d_model), ("n_layers", n_layers), ("seq_len", seq_len)):
+            if not isinstance(value, int) or isinstance(value, bool) or value <= 0:
+                raise ValueError(f"{name}={value!r} must be a positive integer")
+        self.vocab_size, self.d_model, self.n_layers, self.seq_len = vocab_size, d_model, n_layers, seq_len
+        self.ffn_hidden = ffn_hidden or swiglu_hidden(d_model)
+        self.tie_embeddings = tie_embeddings
+        self.embed = nn.Embedding(vocab_size, d_model)
+        self.blocks = nn.ModuleList(
+            Block(d_model, attention_factory(i), self.ffn_hidden) for i in range(n_layers)
+        )
+        self.final_norm = nn.RMSNorm(d_model, eps=1e-5)
+        self.head = nn.Linear(d_model, vocab_size, bias=False)
+        self._init_weights(init_std)
+        if tie_embeddings:
+            self.head.weight = self.embed.weight
+
+    def _init_weights(self, std: float) -> None:
+        residual_std = std / math.sqrt(2 * self.n_layers)
+        for block in self.blocks:
+            for module in block.modules():
+                if isinstance(module, nn.Linear):
+                    nn.init.normal_(module.weight, 0.0, std)
+            nn.init.normal_(block.attention.out_proj.weight, 0.0, residual_std)
+            nn.init.normal_(block.ffn.down.weight, 0.0, residual_std)
+        nn.init.normal_(self.embed.weight, 0.0, std)
+        nn.init.normal_(self.head.weight, 0.0, std)
+
+    def forward(self, ids: torch.Tensor) -> torch.Tensor:
+        h = self.embed(ids)
+        for block in self.blocks:
+            h = block(h)
+        return self.head(self.final_norm(h))
+
+    def attention_blocks(self) -> list[nn.Module]:
+        return [block.attention for block in self.blocks]

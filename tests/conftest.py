@@ -1,0 +1,25 @@
+import os
+import sys
+from pathlib import Path
+
+import pytest
+import torch
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT / "tests"))
+
+NAMED_ATTENTION = [
+    "standard",
+    "standard_head_norm",
+    "standard_wide_heads",
+    "differential",
+    "differential_no_head_norm",
+    "differential_fixed_lambda",
+    "differential_constant_init",
+]
+
+
+@pytest.fixture(autouse=True)
+def _deterministic():
+    torch.manual_seed(0)
+    yield

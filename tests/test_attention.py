@@ -1,0 +1,184 @@
+"""Attention blocks against the published equations and torch's reference implementations."""
+
+import math
+
+import pytest
+import torch
+from torch import nn
+
+from ablate.attention import DifferentialAttention, StandardAttention, depth_lambda_init
+from ablate.attention.rotary import Rotary
+
+D_MODEL, HEAD_DIM, T = 128, 32, 24
+
+
+def reference_rotary(x):
+    """RoFormer rotation (Su et al. 2021) written with complex numbers: channel pairs
+    (i, i + D/2) form z = a + ib, rotated by exp(i m theta_i), theta_i = 10000^(-2i/D)."""
+    d = x.shape[-1]
+    half = d // 2
+    theta = 10000.0 ** (-torch.arange(half, dtype=torch.float64) * 2 / d)
+    m = torch.arange(x.shape[-2], dtype=torch.float64)
+    rot = torch.polar(torch.ones(len(m), half, dtype=torch.float64), torch.outer(m, theta))
+    z = torch.complex(x[..., :half].double(), x[..., half:].double()) * rot
+    return torch.cat([z.real, z.imag], -1).to(x.dtype)
+
+
+def reference_differential(block: DifferentialAttention, x: torch.Tensor) -> torch.Tensor:
+    """Ye et al., ICLR 2025 (arXiv:2410.05258), Eq. 1 and the multi-head form, computed head by
+    head with explicit softmax from the block's own weights."""
+    b, t, _ = x.shape
+    h, d = block.n_heads, block.head_dim
+    q = reference_rotary((x @ block.q_proj.weight.T).view(b, t, 2 * h, d).transpose(1, 2))
+    k = reference_rotary((x @ block.k_proj.weight.T).view(b, t, 2 * h, d).transpose(1, 2))
+    v = (x @ block.v_proj.weight.T).view(b, t, h, 2 * d).transpose(1, 2)
+    if block.lambda_mode == "learned":
+        lam = (
+            torch.exp(block.lambda_q1 @ block.lambda_k1)
+            - torch.exp(block.lambda_q2 @ block.lambda_k2)
+            + block.lambda_init
+        )
+    else:
+        lam = torch.tensor(block.lambda_init)
+    future = torch.ones(t, t).triu(1).bool()
+    heads = []
+    for i in range(h):
+        s1 = q[:, i] @ k[:, i].transpose(-1, -2) / math.sqrt(d)
+        s2 = q[:, h + i] @ k[:, h + i].transpose(-1, -2) / math.sqrt(d)
+        a1 = torch.softmax(s1.masked_fill(future, -math.inf), -1)
+        a2 = torch.softmax(s2.masked_fill(future, -math.inf), -1)
+        o = (a1 - lam * a2) @ v[:, i]
+        if block.use_head_norm:
+            o = o / torch.sqrt(o.pow(2).mean(-1, keepdim=True) + 1e-5) * (1 - block.lambda_init)
+        heads.append(o)
+    return torch.cat(heads, -1) @ block.out_proj.weight.T
+
+
+def _randomise_lambda(block):
+    if block.lambda_mode == "learned":
+        with torch.no_grad():
+            for p in (block.lambda_q1, block.lambda_k1, block.lambda_q2, block.lambda_k2):
+                p.normal_(0, 0.3)
+
+
+@pytest.mark.parametrize("head_norm", [True, False])
+@pytest.mark.parametrize("lambda_mode", ["learned", "fixed"])
+@pytest.mark.parametrize("layer_index", [0, 1, 3, 7])
+def test_differential_matches_published_equations(head_norm, lambda_mode, layer_index):
+    block = DifferentialAttention(D_MODEL, layer_index, 8, HEAD_DIM, head_norm=head_norm, lambda_mode=lambda_mode)
+    _randomise_lambda(block)
+    x = torch.randn(3, T, D_MODEL)
+    expected = reference_differential(block, x)
+    got = block(x)
+    assert (got - expected).abs().max().item() <= 1e-5
+
+
+@pytest.mark.parametrize(
+    "layer, expected", [(1, 0.2), (2, 0.3555), (3, 0.4707), (4, 0.5561)]
+)
+def test_lambda_init_depth_schedule(layer, expected):
+    # Ye et al. 2025: lambda_init = 0.8 - 0.6 exp(-0.3 (l - 1)); values rounded to 4 decimals.
+    assert round(depth_lambda_init(layer), 4) == expected
+    block = DifferentialAttention(D_MODEL, layer_index=layer - 1, n_layers=4, head_dim=HEAD_DIM)
+    assert round(block.lambda_init, 4) == expected
+
+
+def test_fixed_lambda_has_no_parameters_and_stays_at_init():
+    block = DifferentialAttention(D_MODEL, 2, 4, HEAD_DIM, lambda_mode="fixed", lambda_init=0.5)
+    names = [n for n, _ in block.named_parameters()]
+    assert not any(n.startswith("lambda") for n in names)
+    assert block.lambda_value().item() == pytest.approx(0.5)
+
+
+def test_differential_heads_and_value_width():
+    # Ye et al. 2025: h = d_model / (2 d); values are 2d wide per head.
+    block = DifferentialAttention(D_MODEL, 0, 4, HEAD_DIM)
+    assert block.n_heads == D_MODEL // (2 * HEAD_DIM)
+    assert block.v_proj.weight.shape == (block.n_heads * 2 * HEAD_DIM, D_MODEL)
+
+
+def test_standard_matches_torch_multihead_attention():
+    # Reference: torch.nn.MultiheadAttention with copied weights, causal mask, positions off.
+    block = StandardAttention(D_MODEL, 0, 1, HEAD_DIM)
+    block.rotary = nn.Identity()
+    mha = nn.MultiheadAttention(D_MODEL, D_MODEL // HEAD_DIM, bias=False, batch_first=True)
+    with torch.no_grad():
+        mha.in_proj_weight.copy_(torch.cat([block.q_proj.weight, block.k_proj.weight, block.v_proj.weight]))
+        mha.out_proj.weight.copy_(block.out_proj.weight)
+    x = torch.randn(2, T, D_MODEL)
+    future = torch.ones(T, T).triu(1).bool()  # True = not allowed, in MultiheadAttention's convention
+    expected, _ = mha(x, x, x, attn_mask=future, need_weights=False)
+    assert (block(x) - expected).abs().max().item() <= 1e-5
+
+
+def test_standard_weights_match_sdpa_output():
+    # attention_weights @ V reproduces the fused scaled_dot_product_attention output.
+    block = StandardAttention(D_MODEL, 0, 1, HEAD_DIM)
+    x = torch.randn(2, T, D_MODEL)
+    a = block.attention_weights(x)
+    v = block._split(block.v_proj(x))
+    o = (a @ v).transpose(1, 2).reshape(x.shape)
+    assert (block.out_proj(o) - block(x)).abs().max().item() <= 1e-5
+
+
+def test_rotary_matches_complex_form_and_depends_on_offset_only():
+    # Su et al. 2021: <R_m q, R_n k> depends only on m - n.
+    rot = Rotary(HEAD_DIM)
+    x = torch.randn(2, 4, 40, HEAD_DIM)
+    assert (rot(x) - reference_rotary(x)).abs().max().item() <= 1e-5
+    q, k = torch.randn(HEAD_DIM), torch.randn(HEAD_DIM)
+    qs = rot(q.expand(40, HEAD_DIM).clone())
+    ks = rot(k.expand(40, HEAD_DIM).clone())
+    for offset in (0, 3, 11):
+        dots = torch.stack([qs[m] @ ks[m - offset] for m in range(offset, 40)])
+        assert (dots - dots[0]).abs().max().item() < 1e-4
+    assert abs((qs[5] @ ks[2]) - (qs[5] @ ks[4])) > 1e-4  # a different offset does change it
+
+
+@pytest.mark.parametrize("make", [
+    lambda: StandardAttention(D_MODEL, 0, 4, HEAD_DIM),
+    lambda: StandardAttention(D_MODEL, 0, 4, HEAD_DIM, head_norm=True),
+    lambda: StandardAttention(D_MODEL, 0, 4, 2 * HEAD_DIM),
+    lambda: DifferentialAttention(D_MODEL, 0, 4, HEAD_DIM),
+    lambda: DifferentialAttention(D_MODEL, 2, 4, HEAD_DIM, head_norm=False),
+    lambda: DifferentialAttention(D_MODEL, 1, 4, HEAD_DIM, lambda_mode="fixed"),
+])
+def test_blocks_are_causal(make):
+    block = make()
+    x = torch.randn(1, T, D_MODEL)
+    for t in (0, 7, T - 2):
+        changed = x.clone()
+        changed[:, t + 1:] = torch.randn_like(changed[:, t + 1:])
+        before, after = block(x), block(changed)
+        assert torch.allclose(before[:, : t + 1], after[:, : t + 1], atol=1e-6)
+        assert not torch.allclose(before[:, t + 1:], after[:, t + 1:], atol=1e-6)
+
+
+def test_attention_rows_sum_to_one_minus_lambda():
+    x = torch.randn(2, T, D_MODEL)
+    std = StandardAttention(D_MODEL, 0, 4, HEAD_DIM).attention_weights(x)
+    assert std.shape == (2, D_MODEL // HEAD_DIM, T, T)
+    assert torch.allclose(std.sum(-1), torch.ones(()), atol=1e-5)
+    diff = DifferentialAttention(D_MODEL, 2, 4, HEAD_DIM)
+    _randomise_lambda(diff)
+    w = diff.attention_weights(x)
+    assert w.shape == (2, diff.n_heads, T, T)
+    lam = diff.lambda_value().item()
+    assert torch.allclose(w.sum(-1), torch.full((), 1 - lam), atol=1e-5)
+    assert torch.all(w.triu(1) == 0)  # nothing on future positions
+
+
+@pytest.mark.parametrize("kwargs, words", [
+    (dict(d_model=100, head_dim=32), ["d_model=100", "32"]),
+    (dict(d_model=96, head_dim=32, cls=DifferentialAttention), ["d_model=96", "64"]),
+    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_mode="learnt"), ["lambda_mode='learnt'", "learned", "fixed"]),
+    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init=1.2), ["lambda_init=1.2", "(0, 1)"]),
+    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init=0.0), ["lambda_init=0.0", "(0, 1)"]),
+    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init="deep"), ["lambda_init='deep'", "depth"]),
+])
+def test_bad_arguments_name_the_argument(kwargs, words):
+    cls = kwargs.pop("cls", StandardAttention)
+    with pytest.raises(ValueError) as err:
+        cls(**kwargs)
+    for word in words:
+        assert word in str(err.value)

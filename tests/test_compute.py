@@ -1,0 +1,91 @@
+"""Parameter and FLOP accounting against Kaplan et al. 2020 and torch's FLOP counter."""
+
+import pytest
+import torch
+from torch.nn.attention import SDPBackend, sdpa_kernel
+
+from ablate.compute import (
+    account,
+    compare,
+    count_params,
+    kaplan_non_embedding_params,
+    measure_flops_per_token,
+    steps_from_budget,
+)
+from ablate.config import build_model, compose
+from conftest import NAMED_ATTENTION
+
+VOCAB = 1024
+
+
+def tiny(attention, *more):
+    # The data group is dropped so these tests do not need the corpus.
+    return build_model(compose([f"attention={attention}", "~data", *more]), VOCAB)
+
+
+def test_standard_and_differential_parameter_counts_match():
+    std, diff = count_params(tiny("standard"))[0], count_params(tiny("differential"))[0]
+    assert abs(diff / std - 1) <= 0.005
+
+
+@pytest.mark.parametrize("attention", ["standard", "differential"])
+def test_non_embedding_params_closed_form_and_kaplan(attention):
+    model = tiny(attention)
+    L, d, h = model.n_layers, model.d_model, model.ffn_hidden
+    norms = 2 * L * d + d  # two RMSNorm gains per block and the final one
+    lam = 4 * model.blocks[0].attention.head_dim * L if attention == "differential" else 0
+    _, non_embedding = count_params(model)
+    assert non_embedding == L * (4 * d * d + 3 * d * h) + norms + lam
+    # Kaplan et al. 2020, Eq. 2.1: N ~ 12 L d^2 (d_ff = 4d, here SwiGLU at 8/3 d with 3 matrices).
+    assert abs(non_embedding / kaplan_non_embedding_params(L, d) - 1) <= 0.05
+
+
+@pytest.mark.parametrize("attention", NAMED_ATTENTION)
+def test_flops_per_token_match_torch_flop_counter(attention):
+    # Reference: torch.utils.flop_counter.FlopCounterMode on one forward+backward pass. The math
+    # SDPA backend is forced because the counter does not see inside the fused CPU kernel.
+    model = tiny(attention, "model.seq_len=128")
+    with sdpa_kernel(SDPBackend.MATH):
+        measured = measure_flops_per_token(model)
+    assert abs(account(model).flops_per_token / measured - 1) <= 0.02
+
+
+def test_training_flops_are_about_six_n_plus_attention():
+    # Kaplan et al. 2020: C ~ 6N per token (forward 2N, backward 4N), plus the attention term;
+    # Hoffmann et al. 2022, appendix F (from memory): forward logits 2 n_ctx d_attn and value
+    # reduction 2 n_ctx d_attn per token and layer.
+    model = tiny("standard")
+    acc = account(model)
+    n = acc.non_embedding_params
+    six_n = 6 * n
+    attention = 3 * model.n_layers * (2 + 2) * model.seq_len * model.d_model
+    head = 6 * model.d_model * VOCAB
+    assert abs(acc.flops_per_token / (six_n + attention + head) - 1) < 0.01
+
+
+def test_compare_reports_ratios():
+    a, b = account(tiny("differential")), account(tiny("standard"))
+    ratios = compare(a, b)
+    assert ratios["params_ratio"] == pytest.approx(a.params / b.params)
+    assert ratios["flops_ratio"] > 1.0  # two value products per head cost more per token
+
+
+def test_user_variant_without_declared_flops_is_measured():
+    from examples.gated_attention import GatedAttention
+    from ablate.model import Decoder
+
+    model = Decoder(VOCAB, 128, 2, 64, lambda i: GatedAttention(128, i, 2, 32))
+    declared = Decoder(VOCAB, 128, 2, 64, lambda i: __import__("ablate").attention.StandardAttention(128, i, 2, 32))
+    with sdpa_kernel(SDPBackend.MATH):
+        assert account(model).flops_per_token == pytest.approx(account(declared).flops_per_token, rel=0.01)
+
+
+def test_steps_from_budget():
+    assert steps_from_budget("tokens", 4096, 1e6, tokens=1e6) == 244
+    # matching FLOPs: a block twice as expensive per token gets half the steps
+    assert steps_from_budget("flops", 4096, 2e6, flops=2e12) == steps_from_budget("flops", 4096, 1e6, flops=1e12)
+    assert steps_from_budget("flops", 4096, 2e6, flops=1e12) == 122
+    with pytest.raises(ValueError, match="budget.match='both'"):
+        steps_from_budget("both", 4096, 1e6, tokens=1)
+    with pytest.raises(ValueError, match="budget.tokens"):
+        steps_from_budget("tokens", 4096, 1e6, tokens=-5)

@@ -1,0 +1,90 @@
+"""The decoder: norms, shapes, causality and the loss of a fresh model."""
+
+import math
+
+import pytest
+import torch
+from torch import nn
+
+from ablate.attention import DifferentialAttention, StandardAttention
+from ablate.model import Decoder, swiglu_hidden
+
+VOCAB = 512
+
+
+def make(cls=StandardAttention, **kw):
+    return Decoder(VOCAB, 128, 4, 64, lambda i: cls(d_model=128, layer_index=i, n_layers=4, head_dim=32), **kw)
+
+
+def test_rmsnorm_matches_formula_and_torch_reference():
+    # Zhang & Sennrich 2019: y = x / sqrt(mean(x^2) + eps) * g; torch.nn.RMSNorm as reference.
+    model = make()
+    norm = model.blocks[0].attn_norm
+    with torch.no_grad():
+        norm.weight.normal_()
+    x = torch.randn(3, 5, 128)
+    by_formula = x / torch.sqrt(x.pow(2).mean(-1, keepdim=True) + 1e-5) * norm.weight
+    reference = nn.RMSNorm(128, eps=1e-5)
+    reference.load_state_dict(norm.state_dict())
+    assert (norm(x) - by_formula).abs().max().item() <= 1e-5
+    assert (norm(x) - reference(x)).abs().max().item() <= 1e-6
+
+
+def test_swiglu_hidden_is_about_eight_thirds():
+    # Shazeer 2020: SwiGLU hidden size 8/3 d keeps the parameter count of a 4d two-matrix MLP.
+    for d in (64, 128, 256, 384):
+        h = swiglu_hidden(d)
+        assert h % 8 == 0 and abs(h - 8 * d / 3) < 8
+
+
+@pytest.mark.parametrize("cls", [StandardAttention, DifferentialAttention])
+@pytest.mark.parametrize("tie", [True, False])
+def test_fresh_model_loss_is_near_log_vocab(cls, tie):
+    # A freshly initialised model predicts nearly uniformly: loss ~ ln(V) (common practice, no source).
+    model = make(cls, tie_embeddings=tie)
+    ids = torch.randint(0, VOCAB, (8, 65))
+    logits = model(ids[:, :-1])
+    loss = nn.functional.cross_entropy(logits.reshape(-1, VOCAB), ids[:, 1:].reshape(-1))
+    assert abs(loss.item() - math.log(VOCAB)) < 0.1
+
+
+@pytest.mark.parametrize("cls", [StandardAttention, DifferentialAttention])
+def test_decoder_is_causal(cls):
+    model = make(cls)
+    ids = torch.randint(0, VOCAB, (2, 40))
+    changed = ids.clone()
+    changed[:, 21:] = (changed[:, 21:] + 1) % VOCAB
+    a, b = model(ids), model(changed)
+    assert torch.allclose(a[:, :21], b[:, :21], atol=1e-6)
+    assert not torch.allclose(a[:, 21:], b[:, 21:], atol=1e-6)
+
+
+def test_tied_head_shares_the_embedding():
+    tied = make(tie_embeddings=True)
+    assert tied.head.weight.data_ptr() == tied.embed.weight.data_ptr()
+    untied = make(tie_embeddings=False)
+    assert untied.head.weight.data_ptr() != untied.embed.weight.data_ptr()
+
+
+def test_initialisation_scales():
+    model = make()
+    assert abs(model.embed.weight.std().item() - 0.02) < 0.002
+    assert abs(model.blocks[0].ffn.gate.weight.std().item() - 0.02) < 0.002
+    residual = 0.02 / math.sqrt(2 * 4)
+    assert abs(model.blocks[0].attention.out_proj.weight.std().item() - residual) < 0.1 * residual
+
+
+def test_same_seed_same_model():
+    torch.manual_seed(3)
+    a = make()
+    torch.manual_seed(3)
+    b = make()
+    assert all(torch.equal(p, q) for p, q in zip(a.parameters(), b.parameters()))
+
+
+@pytest.mark.parametrize("kw, word", [(dict(vocab_size=0), "vocab_size=0"), (dict(n_layers=-1), "n_layers=-1")])
+def test_bad_sizes_raise(kw, word):
+    args = dict(vocab_size=VOCAB, d_model=128, n_layers=2, seq_len=16, attention_factory=lambda i: StandardAttention(128, i, 2))
+    args.update(kw)
+    with pytest.raises(ValueError, match=word):
+        Decoder(**args)

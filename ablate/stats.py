@@ -1,0 +1,101 @@
+"""Small statistics for comparing runs over seeds.
+
+All intervals are two-sided Student-t intervals for a mean (the seeds are the sample):
+
+    mean +/- t_{q, n-1} * s / sqrt(n),   q = (1 + level) / 2,   s = sample std (ddof = 1)
+
+A paired comparison applies the same interval to the per-seed differences a_i - b_i (same seed =
+same data order, so the pairing removes the data-order part of the noise) and takes its p-value
+from the paired t-test (scipy.stats.ttest_rel).
+
+``seeds_needed`` inverts the half-width: the normal approximation n = ceil((z_q s / w)^2), then
+the smallest n >= 2 with t_{q, n-1} s / sqrt(n) <= w.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import stats
+
+
+def _sample(values) -> np.ndarray:
+    arr = np.asarray(values, dtype=float).ravel()
+    if arr.size == 0:
+        raise ValueError("need at least one value")
+    if not np.all(np.isfinite(arr)):
+        raise ValueError(f"values must be finite, got {arr.tolist()}")
+    return arr
+
+
+def _check_level(level: float) -> float:
+    if not 0.0 < level < 1.0:
+        raise ValueError(f"level must lie in (0, 1), got {level}")
+    return 0.5 + level / 2.0
+
+
+def mean_ci(values, level: float = 0.95) -> tuple[float, float, float]:
+    """Mean and Student-t confidence interval ``(mean, low, high)``.
+
+    One value gives NaN bounds (no spread can be measured from one seed).
+    """
+    q = _check_level(level)
+    arr = _sample(values)
+    mean = float(arr.mean())
+    n = arr.size
+    if n < 2:
+        return mean, math.nan, math.nan
+    half = float(stats.t.ppf(q, n - 1)) * float(arr.std(ddof=1)) / math.sqrt(n)
+    return mean, mean - half, mean + half
+
+
+def paired_difference(a, b, level: float = 0.95) -> tuple[float, float, float, float]:
+    """Mean of ``a - b`` over pairs, its t interval, and the paired t-test p-value.
+
+    ``a[i]`` and ``b[i]`` must come from the same seed. Returns ``(mean, low, high, p)``; with one
+    pair the bounds and p are NaN, and with zero spread in the differences p is NaN (the t
+    statistic is undefined) while the interval collapses to the mean.
+    """
+    x = _sample(a)
+    y = _sample(b)
+    if x.shape != y.shape:
+        raise ValueError(f"paired samples differ in length: {x.size} vs {y.size}")
+    mean, low, high = mean_ci(x - y, level)
+    if x.size < 2 or float(np.std(x - y, ddof=1)) == 0.0:
+        return mean, low, high, math.nan
+    p = float(stats.ttest_rel(x, y).pvalue)
+    return mean, low, high, p
+
+
+def seeds_needed(std: float, halfwidth: float, level: float = 0.95) -> tuple[int, int]:
+    """Seeds needed so the interval half-width is at most ``halfwidth``: ``(n_normal, n_t)``.
+
+    ``n_normal = ceil((z s / w)^2)`` (at least 1) uses the normal quantile z (1.95996... for 95%);
+    ``n_t`` is the smallest n >= 2 with ``t_{n-1} s / sqrt(n) <= w``, the honest count for a t
+    interval (always >= n_normal because t quantiles exceed z).
+    """
+    q = _check_level(level)
+    if not (math.isfinite(std) and std >= 0.0):
+        raise ValueError(f"std must be finite and >= 0, got {std}")
+    if not (math.isfinite(halfwidth) and halfwidth > 0.0):
+        raise ValueError(f"halfwidth must be finite and > 0, got {halfwidth}")
+    z = float(stats.norm.ppf(q))
+    n_normal = max(1, math.ceil((z * std / halfwidth) ** 2))
+
+    def fits(n: int) -> bool:
+        return float(stats.t.ppf(q, n - 1)) * std / math.sqrt(n) <= halfwidth
+
+    lo = max(2, n_normal)
+    if fits(lo):
+        return n_normal, lo
+    hi = 2 * lo
+    while not fits(hi):  # half-width falls with n, so doubling brackets the answer
+        lo, hi = hi, 2 * hi
+    while hi - lo > 1:  # invariant: fits(hi) and not fits(lo)
+        mid = (lo + hi) // 2
+        if fits(mid):
+            hi = mid
+        else:
+            lo = mid
+    return n_normal, hi

@@ -8,17 +8,38 @@ from omegaconf import OmegaConf
 
 CONF_DIR = Path(__file__).resolve().parents[1] / "conf"
 
-if not OmegaConf.has_resolver("multiply"):
-    OmegaConf.register_new_resolver("multiply", lambda a, b: a * b)
+CHECKOUT = CONF_DIR.parent
 
 
-def compose(overrides: list[str] | None = None, config_name: str = "config"):
+def _checkout_path(path: str) -> str:
+    """Relative paths are taken from the checkout root, so runs land in one place whatever the
+    current folder."""
+    p = Path(path).expanduser()
+    return str(p if p.is_absolute() else CHECKOUT / p)
+
+
+def _run_name(override_dirname: str) -> str:
+    return override_dirname or "default"
+
+
+for _name, _fn in (("multiply", lambda a, b: a * b), ("checkout_path", _checkout_path), ("run_name", _run_name)):
+    if not OmegaConf.has_resolver(_name):
+        OmegaConf.register_new_resolver(_name, _fn)
+
+from .schema import register as _register_schema  # noqa: E402
+
+_register_schema()
+
+
+def compose(overrides: list[str] | None = None, config_name: str = "config", return_hydra_config: bool = False):
     """The config ``ablate-train`` would see for these overrides (no run folder, no logging)."""
     from hydra import compose as hydra_compose
     from hydra import initialize_config_dir
+    from hydra.core.global_hydra import GlobalHydra
 
+    GlobalHydra.instance().clear()
     with initialize_config_dir(config_dir=str(CONF_DIR), version_base="1.3"):
-        return hydra_compose(config_name=config_name, overrides=list(overrides or []))
+        return hydra_compose(config_name=config_name, overrides=list(overrides or []), return_hydra_config=return_hydra_config)
 
 
 def build_attention_factory(cfg):

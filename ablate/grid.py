@@ -1,0 +1,162 @@
+"""Before a grid trains: expand its jobs, validate each config, and check fairness.
+
+Uses Hydra's own override parser and basic sweeper to expand the sweep exactly as ``-m`` will,
+then composes each job's config with the compose API.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+from omegaconf import OmegaConf
+
+from .compute import account, compare
+from .schema import ConfigError, validate
+
+NOT_DESIGN = ("seed", "recipe", "run_root")
+
+
+@dataclass
+class Cell:
+    name: str
+    overrides: list
+    cfg: object
+    accounting: object = None
+
+
+def cell_name(overrides: list[str]) -> str:
+    """The design choices of a job: its overrides without seed, recipe and runtime/hydra keys."""
+    keep = []
+    for o in overrides:
+        key = o.split("=", 1)[0].lstrip("+~")
+        if key in NOT_DESIGN or key.startswith(("hydra.", "runtime.")):
+            continue
+        keep.append(o)
+    return ",".join(sorted(keep)) or "default"
+
+
+def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
+    """Every job's override list for ``ablate-train -m <overrides>``, recipe sweeps included."""
+    from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+
+    from .config import compose
+
+    parser = OverridesParser.create()
+    parsed = parser.parse_overrides(overrides)
+    first = [o.get_key_element() + "=" + (str(list(o.sweep_iterator())[0]) if o.is_sweep_override() else o.get_value_element_as_str()) if not o.is_delete() else o.input_line for o in parsed]
+    base = compose(first, return_hydra_config=True)
+    params = dict(base.hydra.sweeper.params or {})
+    cli_keys = {o.get_key_element() for o in parsed}
+    merged = list(overrides) + [f"{k}={v}" for k, v in params.items() if k not in cli_keys]
+    jobs = BasicSweeper.split_arguments(parser.parse_overrides(merged), None)[0]
+    return jobs, base
+
+
+def check_cells(jobs: list[list[str]], vocab_size: int = 1024) -> tuple[list[Cell], object]:
+    """Compose and validate every job; group jobs into cells; account each cell on the meta
+    device (no memory, no time)."""
+    from .config import build_model, compose
+
+    cells: dict[str, Cell] = {}
+    for job in jobs:
+        cfg = compose_checked(job)
+        name = cell_name(job)
+        if name not in cells:
+            with torch.device("meta"):
+                acc = account(build_model(cfg, vocab_size))
+            cells[name] = Cell(name, job, cfg, acc)
+    return list(cells.values()), cfg
+
+
+def compose_checked(overrides: list[str]):
+    from .config import compose
+
+    try:
+        cfg = compose(overrides)
+        OmegaConf.resolve(cfg)
+    except ConfigError:
+        raise
+    except Exception as exc:
+        raise ConfigError(one_line(exc)) from None
+    validate_all(cfg)
+    return cfg
+
+
+def validate_all(cfg) -> None:
+    """Schema ranges, the data group's own checks, and building one attention block."""
+    from hydra.utils import instantiate
+
+    validate(cfg)
+    try:
+        import toy_corpus
+
+        toy_corpus.check_config(OmegaConf.to_container(cfg.data, resolve=True), cfg.model.seq_len)
+    except ValueError as exc:
+        raise ConfigError(f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)) from None
+    try:
+        with torch.device("meta"):
+            instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
+    except ValueError as exc:
+        raise ConfigError(f"attention: {one_line(exc)} (model.d_model={cfg.model.d_model})") from None
+    except Exception as exc:
+        raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {one_line(exc)}") from None
+
+
+def one_line(exc: BaseException) -> str:
+    """Hydra's and OmegaConf's messages, squeezed to one readable line."""
+    text = str(exc).strip()
+    lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
+    keep = [ln for ln in lines if not ln.startswith(("Config search path", "provider=", "object_type=", "Set the environment"))]
+    return " | ".join(keep[:3]) if keep else type(exc).__name__
+
+
+def fairness_table(cells: list[Cell], baseline: str) -> list[dict]:
+    base = next((c for c in cells if c.name == baseline), None)
+    if base is None:
+        raise ConfigError(f"grid.baseline={baseline!r}: not a cell of this grid; cells: {', '.join(c.name for c in cells)}")
+    rows = []
+    for c in cells:
+        ratios = compare(c.accounting, base.accounting)
+        rows.append({"cell": c.name, **c.accounting.as_dict(), **ratios})
+    return rows
+
+
+def differing_keys(a: list[str], b: list[str]) -> set[str]:
+    da = dict(o.split("=", 1) for o in a if "=" in o)
+    db = dict(o.split("=", 1) for o in b if "=" in o)
+    return {k for k in set(da) | set(db) if da.get(k) != db.get(k) and k not in NOT_DESIGN}
+
+
+def check_fairness(cells: list[Cell], baseline: str, tolerance: float, unequal_axes: list[str]) -> list[dict]:
+    """Raise ConfigError with a table when a cell's parameter count differs from the baseline's
+    by more than ``tolerance``, unless every key it differs in is declared unequal on purpose."""
+    rows = fairness_table(cells, baseline)
+    base = next(c for c in cells if c.name == baseline)
+    bad = []
+    for c, row in zip(cells, rows):
+        off = abs(row["params_ratio"] - 1)
+        if off > tolerance:
+            axes = differing_keys(c.overrides, base.overrides)
+            if not axes or not axes <= set(unequal_axes):
+                bad.append(row)
+    if bad:
+        raise ConfigError(
+            f"grid is not parameter-matched within grid.tolerance={tolerance}: "
+            + "; ".join(f"{r['cell']} has {r['params']:,} params ({(r['params_ratio'] - 1) * 100:+.1f}% vs baseline)" for r in bad)
+            + ". Declare the axis in grid.unequal_axes if that is on purpose.\n"
+            + format_table(rows)
+        )
+    return rows
+
+
+def format_table(rows: list[dict]) -> str:
+    header = f"{'cell':<44} {'params':>10} {'vs base':>8} {'FLOPs/token':>12} {'vs base':>8}"
+    lines = [header, "-" * len(header)]
+    for r in rows:
+        lines.append(
+            f"{r['cell'][:44]:<44} {r['params']:>10,} {(r['params_ratio'] - 1) * 100:>+7.1f}% "
+            f"{r['flops_per_token']:>12.3e} {(r['flops_ratio'] - 1) * 100:>+7.1f}%"
+        )
+    return "\n".join(lines)

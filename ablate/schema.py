@@ -1,0 +1,143 @@
+"""Structured-config schemas (registered in Hydra's ConfigStore) and the range checks beside them.
+
+Hydra rejects wrong types and unknown keys against these dataclasses while composing; the
+checks in :func:`validate` cover what a type cannot say (ranges, divisibility, known names).
+Every failure is a :class:`ConfigError` whose message is one line naming key, value and what is
+allowed.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Dict, List, Optional
+
+from hydra.core.config_store import ConfigStore
+
+
+class ConfigError(ValueError):
+    """A user mistake in the configuration; reported as one line, exit code 2."""
+
+
+@dataclass
+class ModelSchema:
+    d_model: int = 128
+    n_layers: int = 4
+    head_dim: int = 32
+    seq_len: int = 256
+    ffn_hidden: Optional[int] = None
+    tie_embeddings: bool = True
+    init_std: float = 0.02
+
+
+@dataclass
+class OptimSchema:
+    name: str = "adamw"
+    lr: float = 2e-3
+    betas: List[float] = field(default_factory=lambda: [0.9, 0.95])
+    eps: float = 1e-8
+    weight_decay: float = 0.1
+    warmup_fraction: float = 0.05
+    min_lr_ratio: float = 0.1
+    grad_clip: float = 1.0
+
+
+@dataclass
+class BudgetSchema:
+    match: str = "tokens"
+    tokens: Optional[float] = None
+    flops: Optional[float] = None
+    batch_size: int = 16
+    eval_every_tokens: float = 2.5e5
+    eval_windows: int = 16
+    checkpoint_every_tokens: float = 5e5
+    log_every_steps: int = 10
+
+
+@dataclass
+class RuntimeSchema:
+    device: str = "cpu"
+    threads: Optional[int] = None
+    compile: bool = False
+    progress: bool = True
+    cache_dir: Optional[str] = None
+    stop_after_steps: Optional[int] = None  # stop early as if interrupted (tests, dry runs)
+
+
+@dataclass
+class GridSchema:
+    name: str = "single"
+    baseline: Optional[str] = None
+    tolerance: float = 0.02
+    unequal_axes: List[str] = field(default_factory=list)
+    target_halfwidth: float = 0.01
+    sweep: Optional[Dict[str, Any]] = None
+
+
+@dataclass
+class RunSchema:
+    model: ModelSchema = field(default_factory=ModelSchema)
+    attention: Any = None
+    data: Any = None
+    optim: OptimSchema = field(default_factory=OptimSchema)
+    budget: BudgetSchema = field(default_factory=BudgetSchema)
+    runtime: RuntimeSchema = field(default_factory=RuntimeSchema)
+    probes: Any = None
+    recipe: Any = None
+    grid: GridSchema = field(default_factory=GridSchema)
+    seed: int = 0
+    run_root: str = "runs"
+
+
+def register() -> None:
+    ConfigStore.instance().store(name="run_schema", node=RunSchema)
+
+
+def _positive(key: str, value, kind=(int, float)) -> None:
+    if isinstance(value, bool) or not isinstance(value, kind) or not value > 0:
+        raise ConfigError(f"{key}={value!r}: must be a positive number")
+
+
+def validate(cfg) -> None:
+    """Range and divisibility checks that types cannot express. Raises ConfigError."""
+    m, o, b, r = cfg.model, cfg.optim, cfg.budget, cfg.runtime
+    for key in ("d_model", "n_layers", "head_dim", "seq_len"):
+        _positive(f"model.{key}", m[key], int)
+    if m.ffn_hidden is not None:
+        _positive("model.ffn_hidden", m.ffn_hidden, int)
+    if o.name != "adamw":
+        raise ConfigError(f"optim.name={o.name!r}: allowed: adamw")
+    _positive("optim.lr", o.lr)
+    if not 0.0 <= o.warmup_fraction < 1.0:
+        raise ConfigError(f"optim.warmup_fraction={o.warmup_fraction!r}: must be in [0, 1)")
+    if o.weight_decay < 0:
+        raise ConfigError(f"optim.weight_decay={o.weight_decay!r}: must be >= 0")
+    if len(o.betas) != 2 or not all(0.0 <= x < 1.0 for x in o.betas):
+        raise ConfigError(f"optim.betas={list(o.betas)!r}: must be two numbers in [0, 1)")
+    if b.match not in ("tokens", "flops"):
+        raise ConfigError(f"budget.match={b.match!r}: allowed: tokens, flops")
+    if b.match == "tokens" or b.flops is None:
+        _positive("budget.tokens", b.tokens)
+    if b.match == "flops" and b.flops is not None:
+        _positive("budget.flops", b.flops)
+    _positive("budget.batch_size", b.batch_size, int)
+    _positive("budget.eval_every_tokens", b.eval_every_tokens)
+    _positive("budget.eval_windows", b.eval_windows, int)
+    _positive("budget.checkpoint_every_tokens", b.checkpoint_every_tokens)
+    _positive("budget.log_every_steps", b.log_every_steps, int)
+    if r.device not in ("cpu", "cuda") and not str(r.device).startswith("cuda:"):
+        raise ConfigError(f"runtime.device={r.device!r}: allowed: cpu, cuda, cuda:<index>")
+    if r.threads is not None:
+        _positive("runtime.threads", r.threads, int)
+    if r.stop_after_steps is not None:
+        _positive("runtime.stop_after_steps", r.stop_after_steps, int)
+    if cfg.attention is None:
+        raise ConfigError("attention: no attention block chosen; pick one with attention=<name>")
+    if "_target_" not in cfg.attention:
+        raise ConfigError("attention._target_: missing; an attention YAML must name its class")
+    validate_grid(cfg.grid)
+
+
+def validate_grid(grid) -> None:
+    if not 0.0 <= grid.tolerance < 1.0:
+        raise ConfigError(f"grid.tolerance={grid.tolerance!r}: must be in [0, 1)")
+    _positive("grid.target_halfwidth", grid.target_halfwidth)

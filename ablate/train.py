@@ -1,0 +1,203 @@
+"""``ablate-train``: the Hydra application over conf/.
+
+    ablate-train attention=differential attention.head_norm=false seed=3
+    ablate-train -m recipe=quickstart
+
+Before Hydra starts any run, :func:`main` composes and validates every job (a bad value stops
+the program with exit code 2 and one line), and for a grid checks parameter fairness against
+the recipe's baseline. Runs land in deterministic folders named after their overrides, so the
+same command resumes an interrupted run and skips a finished one.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+
+from . import records
+from .config import CONF_DIR, CHECKOUT
+from .schema import ConfigError
+
+PASS_THROUGH = ("--help", "-h", "--hydra-help", "--cfg", "-c", "--info", "-i", "--resolve", "--package", "-p",
+                "--shell-completion", "-sc", "--version")
+EXIT_CONFIG = 2
+
+
+def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
+    multirun = any(a in ("-m", "--multirun") for a in argv)
+    design = [a for a in argv if not a.startswith("-") and not a.lstrip("+~").startswith("hydra")]
+    hydra_side = [a for a in argv if not a.startswith("-") and a.lstrip("+~").startswith("hydra")]
+    return multirun, design, hydra_side
+
+
+def preflight(argv: list[str]) -> dict | None:
+    """Validate everything before anything trains. Returns the grid record for ``-m``."""
+    from .grid import check_cells, check_fairness, compose_checked, expand_jobs
+
+    multirun, design, _ = _split_argv(argv)
+    if not multirun:
+        compose_checked(design)
+        return None
+    jobs, base = expand_jobs(design)
+    cells, _ = check_cells(jobs)
+    grid = base.grid
+    baseline = grid.baseline or next((c.name for c in cells if "attention=standard" in c.name.split(",")), cells[0].name)
+    rows = check_fairness(cells, baseline, grid.tolerance, list(grid.unequal_axes))
+    varied = sorted({o.split("=", 1)[0] for c in cells for o in c.overrides
+                     if len({dict(x.split("=", 1) for x in cc.overrides if "=" in x).get(o.split("=", 1)[0]) for cc in cells}) > 1})
+    from omegaconf import OmegaConf
+
+    sweep_dir = Path(OmegaConf.to_container(base, resolve=False)["hydra"]["sweep"]["dir"]
+                     .replace("${run_root}", str(base.run_root)).replace("${grid.name}", str(grid.name)))
+    return {
+        "recipe": base.recipe if isinstance(base.recipe, str) else (grid.name if base.recipe is not None else None),
+        "name": str(grid.name),
+        "baseline": baseline,
+        "varied": [v for v in varied if v != "seed"],
+        "unequal_axes": list(grid.unequal_axes),
+        "tolerance": grid.tolerance,
+        "target_halfwidth": grid.target_halfwidth,
+        "sweep": OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None,
+        "jobs": len(jobs),
+        "seeds": sorted({int(dict(o.split("=", 1) for o in j if "=" in o).get("seed", base.seed)) for j in jobs}),
+        "fairness": rows,
+        "dir": str(sweep_dir),
+    }
+
+
+def _task_impl(cfg) -> dict | None:
+    from hydra.core.hydra_config import HydraConfig
+    from hydra.types import RunMode
+
+    from .grid import cell_name, validate_all
+    from .runner import Interrupted, RunInfo, run
+
+    hc = HydraConfig.get()
+    in_grid = hc.mode == RunMode.MULTIRUN
+    run_dir = Path(hc.runtime.output_dir)
+    choices = {k: v for k, v in hc.runtime.choices.items() if not k.startswith("hydra") and v is not None}
+    overrides = list(hc.overrides.task)
+    info = RunInfo(run_dir=run_dir, choices=choices, cell=cell_name(overrides), overrides=overrides)
+    n_jobs = hc.launcher.get("n_jobs") if "n_jobs" in hc.launcher else None
+    if n_jobs is not None and n_jobs <= 0:
+        n_jobs = os.cpu_count()
+
+    from omegaconf import OmegaConf
+
+    fingerprint = records.config_fingerprint(OmegaConf.to_container(cfg, resolve=True))
+    done = records.read_json(run_dir / records.SUMMARY)
+    if done and done.get("status") == "completed" and done.get("fingerprint") == fingerprint:
+        print(f"skip {run_dir.name}: already completed with the same config", flush=True)
+        return done
+    try:
+        validate_all(cfg)
+        summary = run(cfg, info, parallel_jobs=n_jobs if in_grid else None)
+    except Interrupted as exc:
+        print(f"ablate-train: {exc}", file=sys.stderr, flush=True)
+        sys.exit(130)
+    except (ConfigError, records.CheckpointError) as exc:
+        if not in_grid:
+            print(f"ablate-train: error: {exc}", file=sys.stderr, flush=True)
+            sys.exit(EXIT_CONFIG)
+        return _record_failure(run_dir, info, cfg, exc)
+    except Exception as exc:
+        _record_failure(run_dir, info, cfg, exc)
+        if not in_grid:
+            raise
+        import traceback
+
+        traceback.print_exc()
+        return None
+    _report_run(summary, run_dir)
+    if summary["status"] == "diverged" and not in_grid:
+        sys.exit(1)
+    return summary
+
+
+def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> dict:
+    summary = {
+        "status": "failed",
+        "attention": info.choices.get("attention"),
+        "cell": info.cell,
+        "seed": int(cfg.seed),
+        "error": f"{type(exc).__name__}: {exc}".splitlines()[0],
+        "probes": {},
+    }
+    records.write_json(run_dir / records.SUMMARY, summary)
+    print(f"run {run_dir.name} failed: {summary['error']}", file=sys.stderr, flush=True)
+    return summary
+
+
+def _report_run(summary: dict, run_dir: Path) -> None:
+    if summary["status"] == "completed":
+        print(
+            f"done {summary['cell']} seed {summary['seed']}: val loss {summary['final_val_loss']:.4f} after {summary['tokens']:,} tokens "
+            f"in {summary['wall_seconds']:.0f} s -> {run_dir}", flush=True,
+        )
+    elif summary["status"] == "diverged":
+        print(
+            f"DIVERGED {summary['cell']} seed {summary['seed']}: non-finite loss or gradient at {summary['diverged_at_tokens']:,} tokens "
+            f"(last finite loss {summary['last_finite_loss']}); event files kept in {run_dir}", file=sys.stderr, flush=True,
+        )
+    elif summary["status"] == "stopped":
+        print(f"stopped {run_dir.name} at step {summary['step']} as asked (runtime.stop_after_steps); "
+              "run the same command without it to continue", flush=True)
+
+
+def _hydra_app():
+    import hydra
+
+    @hydra.main(config_path=str(CONF_DIR), config_name="config", version_base="1.3")
+    def task(cfg):
+        return _task_impl(cfg)
+
+    return task
+
+
+def _rel(path: Path) -> str:
+    try:
+        return os.path.relpath(path)
+    except ValueError:
+        return str(path)
+
+
+def main(argv: list[str] | None = None) -> None:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if not any(a in PASS_THROUGH or a.startswith(("--cfg", "--package")) for a in argv):
+        try:
+            grid = preflight(argv)
+        except ConfigError as exc:
+            print(f"ablate-train: error: {exc}", file=sys.stderr)
+            sys.exit(EXIT_CONFIG)
+        if grid is not None:
+            from .grid import format_table
+
+            Path(grid["dir"]).mkdir(parents=True, exist_ok=True)
+            records.write_json(Path(grid["dir"]) / "grid.json", grid)
+            print(f"grid {grid['name']}: {grid['jobs']} runs, baseline {grid['baseline']}, into {grid['dir']}")
+            print(format_table(grid["fairness"]), flush=True)
+    else:
+        grid = None
+    sys.argv = [sys.argv[0]] + argv
+    _hydra_app()()
+    if grid is not None:
+        _grid_epilogue(Path(grid["dir"]))
+
+
+def _grid_epilogue(grid_dir: Path) -> None:
+    statuses = {}
+    for path in sorted(grid_dir.glob("*/summary.json")):
+        s = records.read_json(path) or {}
+        statuses.setdefault(s.get("status", "unknown"), []).append(path.parent.name)
+    counts = ", ".join(f"{len(v)} {k}" for k, v in sorted(statuses.items()))
+    print(f"\ngrid finished: {counts}")
+    for status in ("failed", "diverged"):
+        for name in statuses.get(status, []):
+            print(f"  {status}: {name}")
+    print(f"report:      ablate-report {_rel(grid_dir)}")
+    print(f"curves:      tensorboard --logdir {_rel(grid_dir)}")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,328 @@
+"""How much size (or data) one attention choice saves over another, from a sweep.
+
+Per attention choice, final validation loss is fitted against x (non-embedding parameters, or
+training tokens) with a saturating power law
+
+    L(x) = E + A * (x / x_ref) ** (-alpha),     E >= 0, A >= 0, alpha > 0,
+
+where x_ref is the geometric mean of the fitted x values (it only rescales A and keeps the fit
+well scaled). The fit uses scipy.optimize.curve_fit. When the fit is ill-conditioned (fewer
+than 4 distinct x values, no convergence, no finite covariance, a parameter pinned at a bound,
+or a parameter whose standard error exceeds its value) the curve falls back to a straight line
+in log-log space, log L = log A - alpha * log(x / x_ref), i.e. the same formula with E = 0; the
+result says which curve was used and why.
+
+Size ratio. For a candidate curve L_c and the baseline curve L_b, at a point x:
+
+    x_b(x) = L_b^{-1}(L_c(x))       (the x the baseline needs to reach the candidate's loss)
+    R(x)   = x / x_b(x)
+
+R < 1 means the candidate reaches the baseline's loss with fewer parameters (tokens): "the
+candidate reaches the baseline's loss with R of its parameters", i.e. with R times the
+parameters the baseline needs for that loss. The reported point of comparison is the middle of
+the candidate's swept range, x_mid = geometric mean of its distinct x values. If L_c(x) is at or
+below the baseline's fitted floor E_b, no finite x_b exists and R = 0 (the limit).
+
+Interval: bootstrap over seeds. Each resample draws, within every (attention, x) cell, as many
+seeds as the cell holds, with replacement; both curves are refitted (same curve kind as the
+full-data fit) and R(x_mid) recomputed; the 95% interval is the 2.5 and 97.5 percentiles.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.optimize import OptimizeWarning, curve_fit
+
+POWER_LAW = "power law"
+LOG_LINE = "log-log line"
+ALPHA_BOUNDS = (1e-3, 5.0)
+AXIS_NOUNS = {"params": "parameters", "tokens": "training tokens"}
+
+
+class EfficiencyError(ValueError):
+    """The sweep cannot give a size ratio (too few points, loss not falling with x, ...)."""
+
+
+class IllConditioned(Exception):
+    pass
+
+
+@dataclass(frozen=True)
+class LossCurve:
+    """L(x) = floor + amplitude * (x / x_ref) ** (-exponent)."""
+
+    kind: str
+    floor: float
+    amplitude: float
+    exponent: float
+    x_ref: float
+    note: str = ""
+
+    def loss(self, x):
+        return self.floor + self.amplitude * (np.asarray(x, dtype=float) / self.x_ref) ** (-self.exponent)
+
+    def x_for_loss(self, target):
+        """The x with loss(x) = target (inf at or below the floor)."""
+        target = np.asarray(target, dtype=float)
+        excess = target - self.floor
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x = self.x_ref * (excess / self.amplitude) ** (-1.0 / self.exponent)
+        return np.where(excess > 0, x, np.inf)
+
+    def amplitude_at_unit_x(self) -> float:
+        """A in L = E + A x^(-alpha) with x in its own units (no x_ref)."""
+        return self.amplitude * self.x_ref**self.exponent
+
+
+def _model(u, floor, amplitude, exponent):
+    return floor + amplitude * u ** (-exponent)
+
+
+def _jacobian(u, floor, amplitude, exponent):
+    p = u ** (-exponent)
+    return np.stack([np.ones_like(u), p, -amplitude * p * np.log(u)], axis=1)
+
+
+def _xy(x, y) -> tuple[np.ndarray, np.ndarray]:
+    x = np.asarray(x, dtype=float).ravel()
+    y = np.asarray(y, dtype=float).ravel()
+    if x.shape != y.shape:
+        raise EfficiencyError(f"x and loss differ in length: {x.size} vs {y.size}")
+    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))) or np.any(x <= 0) or np.any(y <= 0):
+        raise EfficiencyError("x and loss must be finite and positive")
+    return x, y
+
+
+def geometric_middle(x) -> float:
+    return float(np.exp(np.mean(np.log(np.unique(np.asarray(x, dtype=float))))))
+
+
+def _starting_point(u, y) -> tuple[float, float, float]:
+    """Best (E, A, alpha) over a grid of alpha, with E and A from linear least squares."""
+    best, best_sse = None, math.inf
+    for alpha in np.geomspace(0.02, 3.0, 40):
+        design = np.stack([np.ones_like(u), u ** (-alpha)], axis=1)
+        (floor, amplitude), *_ = np.linalg.lstsq(design, y, rcond=None)
+        if not (0.0 <= floor < y.min() and amplitude > 0):
+            continue
+        sse = float(np.sum((design @ [floor, amplitude] - y) ** 2))
+        if sse < best_sse:
+            best, best_sse = (float(floor), float(amplitude), float(alpha)), sse
+    if best is None:
+        raise IllConditioned("no starting point with 0 <= E < min(loss) and A > 0 (loss does not fall with x)")
+    return best
+
+
+def fit_power_law(x, y, x_ref: float | None = None) -> LossCurve:
+    """Saturating power law by curve_fit; raises IllConditioned (with the reason) when unsound."""
+    x, y = _xy(x, y)
+    distinct = np.unique(x).size
+    if distinct < 4:
+        raise IllConditioned(f"only {distinct} distinct x values; a 3-parameter curve needs at least 4")
+    x_ref = geometric_middle(x) if x_ref is None else x_ref
+    u = x / x_ref
+    p0 = _starting_point(u, y)
+    lower = [0.0, 0.0, ALPHA_BOUNDS[0]]
+    upper = [float(y.min()), np.inf, ALPHA_BOUNDS[1]]
+    p0 = np.clip(p0, lower, [upper[0] * (1 - 1e-9), np.inf, upper[2]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", OptimizeWarning)
+        try:
+            params, cov = curve_fit(_model, u, y, p0=p0, jac=_jacobian, bounds=(lower, upper), max_nfev=2000)
+        except (RuntimeError, ValueError, OptimizeWarning) as exc:
+            raise IllConditioned(f"curve_fit did not converge ({str(exc).splitlines()[0]})") from None
+    floor, amplitude, exponent = (float(v) for v in params)
+    if not np.all(np.isfinite(cov)):
+        raise IllConditioned("curve_fit returned no finite covariance")
+    span = float(y.max() - y.min()) or 1.0
+    if floor <= 1e-6 * span:
+        raise IllConditioned("floor E pinned at 0 (the data look like a pure power law)")
+    if floor >= y.min() - 1e-6 * span:
+        raise IllConditioned("floor E pinned at the lowest observed loss")
+    if not ALPHA_BOUNDS[0] * 1.001 < exponent < ALPHA_BOUNDS[1] * 0.999:
+        raise IllConditioned(f"exponent alpha pinned at a bound ({exponent:.3g})")
+    errors = np.sqrt(np.diag(cov))
+    for name, value, err in zip(("E", "A", "alpha"), (floor, amplitude, exponent), errors):
+        if err > abs(value):
+            raise IllConditioned(f"{name} is not determined (standard error {err:.3g} > value {value:.3g})")
+    return LossCurve(POWER_LAW, floor, amplitude, exponent, x_ref)
+
+
+def fit_log_line(x, y, x_ref: float | None = None, note: str = "") -> LossCurve:
+    """Straight line in log-log space: L = A (x / x_ref)^(-alpha), floor 0."""
+    x, y = _xy(x, y)
+    if np.unique(x).size < 2:
+        raise EfficiencyError("a log-log line needs at least 2 distinct x values")
+    x_ref = geometric_middle(x) if x_ref is None else x_ref
+    slope, intercept = np.polyfit(np.log(x / x_ref), np.log(y), 1)
+    return LossCurve(LOG_LINE, 0.0, float(np.exp(intercept)), float(-slope), x_ref, note)
+
+
+def fit_loss_curve(x, y, x_ref: float | None = None) -> LossCurve:
+    """Power law when well conditioned, else the log-log line with the reason in ``note``."""
+    try:
+        return fit_power_law(x, y, x_ref)
+    except IllConditioned as exc:
+        return fit_log_line(x, y, x_ref, note=f"power-law fit ill-conditioned: {exc}; used a log-log line")
+
+
+def refit(curve: LossCurve, x, y) -> LossCurve:
+    """Refit the same kind of curve to resampled data, starting from ``curve`` (fast path)."""
+    if curve.kind == LOG_LINE:
+        return fit_log_line(x, y, curve.x_ref)
+    u = np.asarray(x, dtype=float) / curve.x_ref
+    y = np.asarray(y, dtype=float)
+    p0 = (curve.floor, curve.amplitude, curve.exponent)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", OptimizeWarning)
+        params, _ = curve_fit(_model, u, y, p0=p0, jac=_jacobian, method="lm", maxfev=2000,
+                              check_finite=False)
+        floor, amplitude, exponent = (float(v) for v in params)
+        if not (0.0 <= floor and amplitude > 0 and ALPHA_BOUNDS[0] <= exponent <= ALPHA_BOUNDS[1]):
+            # Left the admissible region unconstrained: redo with bounds.
+            upper = [float(y.min()), np.inf, ALPHA_BOUNDS[1]]
+            start = np.clip(p0, [0.0, 0.0, ALPHA_BOUNDS[0]], [upper[0] * (1 - 1e-9), np.inf, upper[2]])
+            params, _ = curve_fit(_model, u, y, p0=start, jac=_jacobian,
+                                  bounds=([0.0, 0.0, ALPHA_BOUNDS[0]], upper), max_nfev=2000)
+    return LossCurve(POWER_LAW, *(float(v) for v in params), curve.x_ref)
+
+
+def size_ratio(baseline: LossCurve, candidate: LossCurve, x):
+    """R(x) = x / L_b^{-1}(L_c(x)); 0 where the candidate is below the baseline's floor."""
+    x = np.asarray(x, dtype=float)
+    needed = baseline.x_for_loss(candidate.loss(x))
+    return np.where(np.isfinite(needed), x / np.where(np.isfinite(needed), needed, 1.0), 0.0)
+
+
+@dataclass
+class Comparison:
+    axis: str
+    baseline: str
+    candidate: str
+    x_mid: float
+    ratio: float
+    ci_low: float
+    ci_high: float
+    resamples: int
+    failed_resamples: int
+    below_floor_resamples: int
+    n_seeds: int
+    grid_x: np.ndarray = field(repr=False)
+    grid_ratio: np.ndarray = field(repr=False)
+    grid_low: np.ndarray = field(repr=False)
+    grid_high: np.ndarray = field(repr=False)
+
+    def sentence(self) -> str:
+        noun = AXIS_NOUNS[self.axis]
+        return (f"{self.candidate} reaches {self.baseline}'s loss with {100 * self.ratio:.0f}% "
+                f"(95% CI {100 * self.ci_low:.0f}-{100 * self.ci_high:.0f}%) of its {noun} at this scale")
+
+
+Cells = dict  # x value -> 1-d array of final losses (one per seed)
+
+
+def _stack(cells: Cells) -> tuple[np.ndarray, np.ndarray]:
+    xs = np.concatenate([np.full(len(v), x, dtype=float) for x, v in sorted(cells.items())])
+    ys = np.concatenate([np.asarray(v, dtype=float) for _, v in sorted(cells.items())])
+    return xs, ys
+
+
+def _resample(cells: Cells, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    drawn = {x: np.asarray(v, dtype=float)[rng.integers(0, len(v), len(v))] for x, v in cells.items()}
+    return _stack(drawn)
+
+
+def bootstrap_ratio(baseline_cells: Cells, candidate_cells: Cells, baseline_fit: LossCurve,
+                    candidate_fit: LossCurve, x_points, resamples: int = 1000, seed: int = 0):
+    """Bootstrap R at ``x_points``: returns (ratios [kept resamples, points], number failed)."""
+    rng = np.random.default_rng(seed)
+    x_points = np.atleast_1d(np.asarray(x_points, dtype=float))
+    kept, failed = [], 0
+    for _ in range(resamples):
+        try:
+            base = refit(baseline_fit, *_resample(baseline_cells, rng))
+            cand = refit(candidate_fit, *_resample(candidate_cells, rng))
+        except (RuntimeError, ValueError):
+            failed += 1
+            continue
+        kept.append(size_ratio(base, cand, x_points))
+    return np.array(kept).reshape(-1, x_points.size), failed
+
+
+def compare(baseline_name: str, baseline_cells: Cells, candidate_name: str, candidate_cells: Cells,
+            axis: str, resamples: int = 1000, seed: int = 0, level: float = 0.95) -> tuple[Comparison, LossCurve, LossCurve]:
+    """Fit both curves, the ratio at the candidate's middle x, and its bootstrap interval."""
+    if axis not in AXIS_NOUNS:
+        raise EfficiencyError(f"sweep axis must be one of {sorted(AXIS_NOUNS)}, got {axis!r}")
+    for name, cells in ((baseline_name, baseline_cells), (candidate_name, candidate_cells)):
+        if len(cells) < 3:
+            raise EfficiencyError(f"{name}: needs at least 3 distinct {axis} values, found {len(cells)}")
+    base_fit = fit_loss_curve(*_stack(baseline_cells))
+    cand_fit = fit_loss_curve(*_stack(candidate_cells))
+    for name, curve in ((baseline_name, base_fit), (candidate_name, cand_fit)):
+        if curve.exponent <= 0:
+            raise EfficiencyError(f"{name}: loss does not fall with {axis} (fitted exponent {curve.exponent:.3g})")
+    xs = np.array(sorted(candidate_cells), dtype=float)
+    x_mid = geometric_middle(xs)
+    grid = np.geomspace(xs.min(), xs.max(), 40)
+    points = np.concatenate([[x_mid], grid])
+    draws, failed = bootstrap_ratio(baseline_cells, candidate_cells, base_fit, cand_fit, points, resamples, seed)
+    if draws.shape[0] < max(1, resamples // 2):
+        raise EfficiencyError(f"{candidate_name}: {failed} of {resamples} bootstrap refits failed")
+    tail = 100 * (1 - level) / 2
+    low, high = np.percentile(draws, [tail, 100 - tail], axis=0)
+    n_seeds = min(len(v) for cells in (baseline_cells, candidate_cells) for v in cells.values())
+    result = Comparison(
+        axis=axis, baseline=baseline_name, candidate=candidate_name, x_mid=x_mid,
+        ratio=float(size_ratio(base_fit, cand_fit, x_mid)), ci_low=float(low[0]), ci_high=float(high[0]),
+        resamples=resamples, failed_resamples=failed,
+        below_floor_resamples=int(np.sum(draws[:, 0] == 0.0)), n_seeds=n_seeds,
+        grid_x=grid, grid_ratio=size_ratio(base_fit, cand_fit, grid), grid_low=low[1:], grid_high=high[1:],
+    )
+    return result, base_fit, cand_fit
+
+
+def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: list) -> None:
+    """Left: points and fitted curves per attention choice. Right: ratio R(x) with its band."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, (left, right) = plt.subplots(1, 2, figsize=(11, 4.2))
+    colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    for i, (name, cells) in enumerate(sorted(cells_by_choice.items())):
+        color = colors[i % len(colors)]
+        xs, ys = _stack(cells)
+        left.scatter(xs, ys, s=14, color=color, alpha=0.7)
+        if name in fits:
+            curve = fits[name]
+            grid = np.geomspace(xs.min(), xs.max(), 100)
+            left.plot(grid, curve.loss(grid), color=color, label=f"{name} ({curve.kind})")
+        else:
+            left.plot([], [], color=color, label=f"{name} (no fit)")
+    left.set_xscale("log")
+    left.set_xlabel(AXIS_NOUNS[axis])
+    left.set_ylabel("final validation loss")
+    left.set_title("loss across the sweep")
+    left.legend(fontsize=8)
+    for i, comp in enumerate(comparisons):
+        color = colors[(i + 1) % len(colors)]
+        right.plot(comp.grid_x, 100 * comp.grid_ratio, color=color, label=f"{comp.candidate} vs {comp.baseline}")
+        right.fill_between(comp.grid_x, 100 * comp.grid_low, 100 * comp.grid_high, color=color, alpha=0.2)
+        right.errorbar([comp.x_mid], [100 * comp.ratio], color=color, fmt="o",
+                       yerr=[[100 * (comp.ratio - comp.ci_low)], [100 * (comp.ci_high - comp.ratio)]])
+    right.axhline(100, color="grey", lw=0.8, ls="--")
+    right.set_xscale("log")
+    right.set_xlabel(AXIS_NOUNS[axis])
+    right.set_ylabel(f"% of baseline's {AXIS_NOUNS[axis]} for equal loss")
+    right.set_title("size ratio R (band: bootstrap 95%)")
+    if comparisons:
+        right.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)

@@ -54,15 +54,17 @@ def paired_difference(a, b, level: float = 0.95) -> tuple[float, float, float, f
     """Mean of ``a - b`` over pairs, its t interval, and the paired t-test p-value.
 
     ``a[i]`` and ``b[i]`` must come from the same seed. Returns ``(mean, low, high, p)``; with one
-    pair the bounds and p are NaN, and with zero spread in the differences p is NaN (the t
-    statistic is undefined) while the interval collapses to the mean.
+    pair the bounds and p are NaN, and with zero spread in the differences (up to float rounding)
+    p is NaN (the t statistic is undefined) while the interval collapses to the mean.
     """
     x = _sample(a)
     y = _sample(b)
     if x.shape != y.shape:
         raise ValueError(f"paired samples differ in length: {x.size} vs {y.size}")
-    mean, low, high = mean_ci(x - y, level)
-    if x.size < 2 or float(np.std(x - y, ddof=1)) == 0.0:
+    d = x - y
+    mean, low, high = mean_ci(d, level)
+    # Spread at rounding level (e.g. a constant offset stored in floats) counts as no spread.
+    if x.size < 2 or float(np.std(d, ddof=1)) <= 1e-12 * max(float(np.abs(d).max()), 1e-300):
         return mean, low, high, math.nan
     p = float(stats.ttest_rel(x, y).pvalue)
     return mean, low, high, p

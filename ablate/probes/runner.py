@@ -1,0 +1,160 @@
+"""``run_probes``: every enabled probe on one model, timed, as flat numbers and images.
+
+``probes_cfg`` keys (``conf/probes/default.yaml`` holds the defaults):
+
+- ``enabled``: list drawn from ``retrieval``, ``attention``, ``outliers``, ``classification``,
+  ``quantization``, ``position``;
+- ``images`` (bool), ``n_images``, ``image_layers``: the retrieval attention pictures;
+- ``val_windows``: validation windows for ``outliers``, ``quantization`` and ``position``;
+- ``position_buckets``: position ranges of the ``position`` probe;
+- ``max_items``: cap on items per probe set (evenly spaced), or null for all;
+- ``batch_tokens``: padded tokens per forward pass;
+- ``every_tokens``: periodic probing, read by the trainer (ignored here).
+
+Each probe's wall time is reported as ``probe_seconds/<name>`` (``probe_seconds/images`` for the
+pictures, ``probe_seconds/total`` for everything). When both ``retrieval`` and ``attention`` are
+enabled they share one forward sweep over the retrieval items: its forward passes count as
+``retrieval``, the extra ``attention_weights`` calls as ``attention``.
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Callable, Mapping
+
+import numpy as np
+from torch import nn
+
+from . import attention as attention_mod
+from . import retrieval as retrieval_mod
+from .attention import attention_probe
+from .classification import classification_probe
+from .common import DEFAULT_BATCH_TOKENS, check_item_lengths, spread_select, validation_windows
+from .outliers import outlier_probe
+from .pictures import attention_pictures
+from .position import position_probe
+from .quantization import quantization_probe
+from .retrieval import retrieval_probe
+from .scan import scan_items
+
+PROBE_NAMES = ("retrieval", "attention", "outliers", "classification", "quantization", "position")
+DEFAULTS = {
+    "enabled": list(PROBE_NAMES),
+    "images": True,
+    "n_images": 2,
+    "image_layers": 2,
+    "val_windows": 8,
+    "position_buckets": 8,
+    "max_items": None,
+    "batch_tokens": DEFAULT_BATCH_TOKENS,
+    "every_tokens": None,
+}
+WINDOW_PROBES = ("outliers", "quantization", "position")
+
+
+def _positive_int(name: str, value, allow_none: bool = False) -> None:
+    if allow_none and value is None:
+        return
+    if not isinstance(value, int) or isinstance(value, bool) or value <= 0:
+        allowed = "a positive integer or null" if allow_none else "a positive integer"
+        raise ValueError(f"probes.{name}={value!r}: must be {allowed}")
+
+
+def resolve_config(probes_cfg: Mapping) -> dict:
+    """Defaults merged with ``probes_cfg``; unknown keys and bad values raise one-line errors."""
+    unknown = sorted(set(probes_cfg) - set(DEFAULTS))
+    if unknown:
+        raise ValueError(f"probes.{unknown[0]}: unknown key; allowed: {', '.join(DEFAULTS)}")
+    cfg = {**DEFAULTS, **dict(probes_cfg)}
+    enabled = cfg["enabled"]
+    if isinstance(enabled, str) or not all(isinstance(n, str) for n in enabled):
+        raise ValueError(f"probes.enabled={enabled!r}: must be a list drawn from {', '.join(PROBE_NAMES)}")
+    for name in enabled:
+        if name not in PROBE_NAMES:
+            raise ValueError(f"probes.enabled: {name!r} is not a probe; allowed: {', '.join(PROBE_NAMES)}")
+    cfg["enabled"] = list(enabled)
+    if not isinstance(cfg["images"], bool):
+        raise ValueError(f"probes.images={cfg['images']!r}: must be true or false")
+    for name in ("n_images", "image_layers", "val_windows", "position_buckets", "batch_tokens"):
+        _positive_int(name, cfg[name])
+    _positive_int("max_items", cfg["max_items"], allow_none=True)
+    _positive_int("every_tokens", cfg["every_tokens"], allow_none=True)
+    return cfg
+
+
+def _probe_set(corpus, name: str, max_items, seq_len: int) -> list[dict]:
+    sets = getattr(corpus, "probe_sets", None)
+    if sets is None or name not in sets:
+        raise ValueError(f"probes: the corpus has no probe set {name!r} (corpus.probe_sets)")
+    items = spread_select(list(sets[name]), max_items)
+    if not items:
+        raise ValueError(f"probes: the probe set {name!r} is empty")
+    check_item_lengths(items, seq_len, name)
+    return items
+
+
+def retrieval_and_attention(model: nn.Module, items: list[dict], device, batch_tokens: int) -> dict[str, float]:
+    """Both probes from one forward sweep (:mod:`ablate.probes.scan`). The forward passes are timed
+    as ``retrieval``; the extra ``attention_weights`` calls as ``attention``."""
+    retrieval_mod.check_meta(items, retrieval_mod.META_KEYS, "retrieval")
+    attention_mod.check_items(items)
+    scan = scan_items(model, items, batch_tokens, device, predictions=True, rows_for=attention_mod.eligible(items))
+    t0 = time.perf_counter()
+    out = retrieval_mod.summarize(items, retrieval_mod.results_from_predictions(items, scan.predictions))
+    t1 = time.perf_counter()
+    out.update(attention_mod.allocation_summary(items, scan.rows))
+    t2 = time.perf_counter()
+    out["probe_seconds/retrieval"] = scan.forward_seconds + (t1 - t0)
+    out["probe_seconds/attention"] = scan.rows_seconds + (t2 - t1)
+    return out
+
+
+def run_probes(model: nn.Module, corpus, probes_cfg: Mapping, device="cpu") -> tuple[dict[str, float], dict[str, np.ndarray]]:
+    """Runs the enabled probes under ``torch.no_grad()`` in eval mode (the model's mode is restored).
+
+    Returns ``(numbers, images)``: a flat ``name -> float`` dict and ``name -> uint8 [H, W, 3]``.
+    """
+    cfg = resolve_config(probes_cfg)
+    seq_len = int(getattr(model, "seq_len"))
+    bt = cfg["batch_tokens"]
+    numbers: dict[str, float] = {}
+    images: dict[str, np.ndarray] = {}
+    started = time.perf_counter()
+
+    def timed(name: str, fn: Callable[[], dict]) -> dict:
+        t0 = time.perf_counter()
+        result = fn()
+        numbers[f"probe_seconds/{name}"] = time.perf_counter() - t0
+        return result
+
+    needs_retrieval = any(n in cfg["enabled"] for n in ("retrieval", "attention")) or cfg["images"]
+    retrieval_items = _probe_set(corpus, "retrieval", cfg["max_items"], seq_len) if needs_retrieval else []
+    windows = None
+    if any(n in cfg["enabled"] for n in WINDOW_PROBES):
+        val_ids = getattr(corpus, "val_ids", None)
+        if val_ids is None:
+            raise ValueError("probes: the corpus has no val_ids for the window probes")
+        windows = validation_windows(np.asarray(val_ids), seq_len, cfg["val_windows"])
+
+    if "retrieval" in cfg["enabled"] and "attention" in cfg["enabled"]:
+        numbers.update(retrieval_and_attention(model, retrieval_items, device, bt))
+    for name in cfg["enabled"]:
+        if name == "retrieval" and "attention" not in cfg["enabled"]:
+            numbers.update(timed(name, lambda: retrieval_probe(model, retrieval_items, device, bt)))
+        elif name == "attention" and "retrieval" not in cfg["enabled"]:
+            numbers.update(timed(name, lambda: attention_probe(model, retrieval_items, device, bt)))
+        elif name == "classification":
+            items = _probe_set(corpus, "classification", cfg["max_items"], seq_len)
+            numbers.update(timed(name, lambda: classification_probe(model, items, device, bt)))
+        elif name == "outliers":
+            numbers.update(timed(name, lambda: outlier_probe(model, windows, device, bt)))
+        elif name == "quantization":
+            numbers.update(timed(name, lambda: quantization_probe(model, windows, device, bt)))
+        elif name == "position":
+            numbers.update(timed(name, lambda: position_probe(model, windows, cfg["position_buckets"], device, bt)))
+    if cfg["images"]:
+        t0 = time.perf_counter()
+        images = attention_pictures(model, retrieval_items, cfg["n_images"], cfg["image_layers"], device)
+        numbers["probe_seconds/images"] = time.perf_counter() - t0
+    numbers["probe_seconds/total"] = time.perf_counter() - started
+    return numbers, images

@@ -9,6 +9,7 @@ forward passes) and ``rows_seconds`` (the extra ``attention_weights`` calls).
 
 from __future__ import annotations
 
+import contextlib
 import time
 from dataclasses import dataclass, field
 from typing import Sequence
@@ -42,7 +43,8 @@ def scan_items(model: nn.Module, items: Sequence[dict], batch_tokens: int, devic
     wanted = list(rows_for) if rows_for is not None else [False] * len(items)
     result = ScanResult([None] * len(items), [None] * len(items))
     modules = attention_modules(model) if any(wanted) else []
-    with evaluating(model), capture_attention_inputs(model) as inputs:
+    capture = capture_attention_inputs(model) if modules else contextlib.nullcontext([])
+    with evaluating(model), capture as inputs:
         for idx, ids, lengths in item_batches(items, batch_tokens, device):
             t0 = time.perf_counter()
             logits = model(ids)

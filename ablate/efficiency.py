@@ -41,6 +41,7 @@ POWER_LAW = "power law"
 LOG_LINE = "log-log line"
 ALPHA_BOUNDS = (1e-3, 5.0)
 AXIS_NOUNS = {"params": "parameters", "tokens": "training tokens"}
+AXIS_LABELS = {"params": "non-embedding parameters", "tokens": "training tokens"}
 
 
 class EfficiencyError(ValueError):
@@ -294,9 +295,11 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
     import matplotlib.pyplot as plt
 
     fig, (left, right) = plt.subplots(1, 2, figsize=(11, 4.2))
-    colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
-    for i, (name, cells) in enumerate(sorted(cells_by_choice.items())):
-        color = colors[i % len(colors)]
+    cycle = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    colors = {name: cycle[i % len(cycle)] for i, name in enumerate(sorted(cells_by_choice))}
+    label = AXIS_LABELS[axis]
+    for name, cells in sorted(cells_by_choice.items()):
+        color = colors[name]
         xs, ys = _stack(cells)
         left.scatter(xs, ys, s=14, color=color, alpha=0.7)
         if name in fits:
@@ -306,19 +309,19 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
         else:
             left.plot([], [], color=color, label=f"{name} (no fit)")
     left.set_xscale("log")
-    left.set_xlabel(AXIS_NOUNS[axis])
+    left.set_xlabel(label)
     left.set_ylabel("final validation loss")
     left.set_title("loss across the sweep")
     left.legend(fontsize=8)
-    for i, comp in enumerate(comparisons):
-        color = colors[(i + 1) % len(colors)]
+    for comp in comparisons:
+        color = colors.get(comp.candidate, "black")
         right.plot(comp.grid_x, 100 * comp.grid_ratio, color=color, label=f"{comp.candidate} vs {comp.baseline}")
         right.fill_between(comp.grid_x, 100 * comp.grid_low, 100 * comp.grid_high, color=color, alpha=0.2)
         right.errorbar([comp.x_mid], [100 * comp.ratio], color=color, fmt="o",
                        yerr=[[100 * (comp.ratio - comp.ci_low)], [100 * (comp.ci_high - comp.ratio)]])
     right.axhline(100, color="grey", lw=0.8, ls="--")
     right.set_xscale("log")
-    right.set_xlabel(AXIS_NOUNS[axis])
+    right.set_xlabel(label)
     right.set_ylabel(f"% of baseline's {AXIS_NOUNS[axis]} for equal loss")
     right.set_title("size ratio R (band: bootstrap 95%)")
     if comparisons:

@@ -490,7 +490,8 @@ def retrieval_grid(table) -> dict[str, tuple[list[int], list[float], np.ndarray]
 def plot_retrieval(grids, path: Path) -> None:
     plt = _plt()
     cells = sorted(grids)
-    fig, axes = plt.subplots(1, len(cells), figsize=(4.5 * len(cells), 3.8), squeeze=False)
+    fig, axes = plt.subplots(1, len(cells), figsize=(4.5 * len(cells) + 1, 3.8), squeeze=False,
+                             layout="constrained")
     image = None
     for ax, cell in zip(axes[0], cells):
         lengths, depths, acc = grids[cell]
@@ -515,9 +516,13 @@ def plot_retrieval(grids, path: Path) -> None:
 def _f(value, digits=4) -> str:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "-"
-    if isinstance(value, int):
-        return str(value)
+    if isinstance(value, int) or (isinstance(value, float) and value.is_integer() and abs(value) < 1e10):
+        return f"{int(value):,}"
     return f"{value:.{digits}g}" if abs(value) >= 1e4 or abs(value) < 1e-3 and value != 0 else f"{value:.{digits}f}"
+
+
+def _ratio(value) -> str:
+    return f"{value:.3f}" if math.isfinite(value) else "-"
 
 
 def _interval(low, high) -> str:
@@ -578,7 +583,7 @@ def write_csv(path: Path, rows: list[Row], comparisons: list) -> None:
 
 def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed: int) -> tuple[str, str]:
     if not grid.is_dir():
-        raise ReportError(f"grid folder not found: {grid}")
+        raise ReportError(f"grid folder not found (or not a folder): {grid}")
     runs = find_runs(grid)
     if not runs:
         raise ReportError(f"no summary.json below {grid}")
@@ -636,6 +641,9 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     md.append(f"- Baseline: `{baseline}` ({how})")
     if sweep_key and any(refs[c] != baseline for c in cells):
         md.append(f"- Sweep over `{sweep_key}`: each cell is compared with the baseline's design at the same sweep point.")
+    elif sweep_key:
+        md.append(f"- Sweep over `{sweep_key}`, but no cell name carries `{sweep_key}=<value>` matching a baseline cell: "
+                  "every cell is compared with the one baseline.")
     md.append(f"- Runs: {len(runs)} found; {n_by_status['averaged']} completed and averaged"
               + "".join(f", {n} {s}" for s, n in sorted(n_by_status.items()) if s != "averaged") + ".")
     if info.get("varied"):
@@ -648,7 +656,7 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     md += _table(["cell"] + [label for _, label in FAIRNESS_KEYS] + [f"{label} ratio" for _, label in FAIRNESS_KEYS]
                  + ["reference"],
                  [[f"`{e['cell']}`"] + [_f(e[k]) + (" (varies)" if e[k + "_varies"] else "") for k, _ in FAIRNESS_KEYS]
-                  + [_f(e[k + "_ratio"], 3) for k, _ in FAIRNESS_KEYS] + [f"`{e['reference']}`"] for e in fairness])
+                  + [_ratio(e[k + "_ratio"]) for k, _ in FAIRNESS_KEYS] + [f"`{e['reference']}`"] for e in fairness])
     if any(e["from"] != "completed runs" for e in fairness):
         md.append("")
         md.append("Cells without a completed run take their sizes from unfinished runs.")
@@ -665,10 +673,10 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     if eff is not None:
         comparisons, _, _, notes = eff
         axis = info["sweep"]["axis"]
-        md += ["", f"## Efficiency across the sweep ({efficiency.AXIS_NOUNS[axis]})", ""]
+        md += ["", f"## Efficiency across the sweep ({efficiency.AXIS_LABELS[axis]})", ""]
         for comp in comparisons:
             md.append(f"- **{comp.sentence()}.**")
-            md.append(f"  Compared at {efficiency.AXIS_NOUNS[axis]} = {comp.x_mid:.4g} (geometric middle of the sweep); "
+            md.append(f"  Compared at {efficiency.AXIS_LABELS[axis]} = {comp.x_mid:.4g} (geometric middle of the sweep); "
                       f"ratio = x / (baseline's x for the same loss); bootstrap over seeds, {comp.resamples} resamples"
                       + (f", {comp.failed_resamples} refits failed and were left out" if comp.failed_resamples else "")
                       + (f", {comp.below_floor_resamples} fell below the baseline's floor (ratio 0)" if comp.below_floor_resamples else "")

@@ -150,7 +150,7 @@ def test_failed_and_diverged_runs_listed_not_averaged(built):
     assert "`attention=differential/seed=3` | failed" in left_out
     assert "RuntimeError: out of memory" in left_out and "more lines" not in left_out
     assert "`attention=differential/seed=3` | failed | no curves logged |" in left_out
-    assert "`attention=standard/seed=3` | diverged | diverged at 750000 tokens | last finite loss 7.5" in left_out
+    assert "`attention=standard/seed=3` | diverged | diverged at 750,000 tokens | last finite loss 7.5" in left_out
     assert "8 found; 6 completed and averaged, 1 diverged, 1 failed" in md
 
 

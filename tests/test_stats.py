@@ -58,6 +58,16 @@ def test_paired_difference_equals_scipy_ttest_rel():
     assert (p < 0.05) == (high < 0 or low > 0)
 
 
+def test_paired_difference_constant_offset_has_no_p_value():
+    # Differences equal up to float rounding (0.3 stored three ways): no spread, so the t statistic
+    # is undefined; p is NaN and the interval collapses onto the mean.
+    a = np.array([0.701, 0.711, 0.721])
+    b = np.array([0.401, 0.411, 0.421])
+    mean, low, high, p = paired_difference(a, b)
+    assert mean == pytest.approx(0.3) and low == pytest.approx(0.3) and high == pytest.approx(0.3)
+    assert math.isnan(p)
+
+
 def test_paired_difference_rejects_unequal_lengths():
     with pytest.raises(ValueError):
         paired_difference([1.0, 2.0], [1.0])

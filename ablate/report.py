@@ -442,7 +442,7 @@ def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str]) -> list[str]:
     cells = sorted({r.cell for r in rows})
     lookup = {(r.cell, r.metric): r for r in rows}
     for family, metrics in families.items():
-        fig, ax = plt.subplots(figsize=(max(5.0, 0.9 * len(metrics) * len(cells) + 2), 4))
+        fig, ax = plt.subplots(figsize=(max(7.0, 0.9 * len(metrics) * len(cells) + 3), 4.2))
         width = 0.8 / len(cells)
         for j, cell in enumerate(cells):
             means, errs = [], [[], []]
@@ -458,8 +458,14 @@ def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str]) -> list[str]:
         ax.set_xticks(np.arange(len(metrics)))
         ax.set_xticklabels(metrics, rotation=30 if len(metrics) > 3 else 0, ha="right" if len(metrics) > 3 else "center",
                            fontsize=8)
-        ax.set_title(f"{family}: mean over seeds, whiskers = 95% t interval")
-        ax.legend(fontsize=8)
+        title = f"{family}\nmean over seeds, whiskers = 95% t interval"
+        if family == "loss":  # loss differences are small next to the loss itself: zoom in
+            ends = [v for r in rows if r.metric == LOSS for v in (r.ci_low, r.ci_high, r.mean) if math.isfinite(v)]
+            pad = 0.25 * (max(ends) - min(ends)) or 0.01
+            ax.set_ylim(min(ends) - pad, max(ends) + pad)
+            title += " (axis does not start at 0)"
+        ax.set_title(title, fontsize=10)
+        ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
         fig.tight_layout()
         name = f"bars_{_safe(family)}.png"
         fig.savefig(plot_dir / name, dpi=110)

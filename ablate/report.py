@@ -423,66 +423,105 @@ def plot_lambda(runs: list[Run], path: Path) -> bool:
     return True
 
 
-def _family(metric: str) -> str:
-    return metric.split("/", 1)[0] if "/" in metric else "probes"
-
-
 def _safe(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", name).strip("_") or "metric"
 
 
-def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str]) -> list[str]:
-    """One grouped bar chart per metric family (loss on its own): bars = cells, whiskers = 95% CI."""
-    families: dict[str, list[str]] = defaultdict(list)
+def bar_groups(rows: list[Row], skip: set[str], per_chart: int = 16) -> dict[str, list[tuple[str, str]]]:
+    """Chart title -> [(metric, x label)], so that each chart holds numbers of one kind.
+
+    ``family/<middle>/measure`` (e.g. one number per layer) -> one chart per family and measure,
+    x = the middle part; ``family/name`` -> one chart per family, split into numbers within
+    [-1, 1] and larger ones; the final loss has its own chart. Charts hold at most ``per_chart``
+    groups of bars (longer ones are split into numbered parts).
+    """
+    largest: dict[str, float] = defaultdict(float)
+    for r in rows:
+        if math.isfinite(r.mean):
+            largest[r.metric] = max(largest[r.metric], abs(r.mean))
+    groups: dict[str, list[tuple[str, str]]] = defaultdict(list)
     for metric in dict.fromkeys(r.metric for r in rows):
-        if metric not in skip:
-            families["loss" if metric == LOSS else _family(metric)].append(metric)
+        if metric in skip:
+            continue
+        parts = metric.split("/")
+        if metric == LOSS:
+            groups["final validation loss"].append((metric, metric))
+        elif len(parts) >= 3:
+            groups[f"{parts[0]}: {parts[-1]}"].append((metric, "/".join(parts[1:-1])))
+        else:
+            family = parts[0] if len(parts) == 2 else "probes"
+            scale = "within [-1, 1]" if largest[metric] <= 1.0 else "larger numbers"
+            groups[f"{family} ({scale})"].append((metric, parts[-1]))
+    charts = {}
+    for title, members in groups.items():
+        chunks = [members[i:i + per_chart] for i in range(0, len(members), per_chart)]
+        for k, chunk in enumerate(chunks):
+            charts[title if len(chunks) == 1 else f"{title} (part {k + 1} of {len(chunks)})"] = chunk
+    return charts
+
+
+def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str]) -> list[tuple[str, str]]:
+    """Grouped bar charts (see bar_groups): bars = cells, whiskers = 95% t interval.
+
+    Returns (title, file name) per chart written.
+    """
     plt = _plt()
     written = []
     cells = sorted({r.cell for r in rows})
     lookup = {(r.cell, r.metric): r for r in rows}
-    for family, metrics in families.items():
-        fig, ax = plt.subplots(figsize=(max(7.0, 0.9 * len(metrics) * len(cells) + 3), 4.2))
+    for title, members in bar_groups(rows, skip).items():
+        fig, ax = plt.subplots(figsize=(max(7.0, 0.45 * len(members) * len(cells) + 3), 4.2))
         width = 0.8 / len(cells)
+        ends = []
         for j, cell in enumerate(cells):
             means, errs = [], [[], []]
-            for metric in metrics:
+            for metric, _ in members:
                 row = lookup.get((cell, metric))
                 mean = row.mean if row and row.n else math.nan
                 means.append(mean)
-                low_ok = row and math.isfinite(row.ci_low)
-                errs[0].append(mean - row.ci_low if low_ok else 0.0)
-                errs[1].append(row.ci_high - mean if low_ok else 0.0)
-            ax.bar(np.arange(len(metrics)) + (j - (len(cells) - 1) / 2) * width, means, width, yerr=errs,
+                has_ci = bool(row) and math.isfinite(row.ci_low)
+                errs[0].append(mean - row.ci_low if has_ci else 0.0)
+                errs[1].append(row.ci_high - mean if has_ci else 0.0)
+                ends += [v for v in ((row.ci_low, row.ci_high, mean) if has_ci else (mean,)) if math.isfinite(v)]
+            ax.bar(np.arange(len(members)) + (j - (len(cells) - 1) / 2) * width, means, width, yerr=errs,
                    capsize=3, label=cell)
-        ax.set_xticks(np.arange(len(metrics)))
-        ax.set_xticklabels(metrics, rotation=30 if len(metrics) > 3 else 0, ha="right" if len(metrics) > 3 else "center",
-                           fontsize=8)
-        title = f"{family}\nmean over seeds, whiskers = 95% t interval"
-        if family == "loss":  # loss differences are small next to the loss itself: zoom in
-            ends = [v for r in rows if r.metric == LOSS for v in (r.ci_low, r.ci_high, r.mean) if math.isfinite(v)]
-            pad = 0.25 * (max(ends) - min(ends)) or 0.01
+        labels = [label for _, label in members]
+        tilt = len(members) > 3 or max(len(x) for x in labels) > 14
+        ax.set_xticks(np.arange(len(members)))
+        ax.set_xticklabels(labels, rotation=30 if tilt else 0, ha="right" if tilt else "center", fontsize=8)
+        heading = f"{title}\nmean over seeds, whiskers = 95% t interval"
+        # Small differences on a large positive level (losses) vanish on an axis from 0: zoom in.
+        if ends and min(ends) > 0 and max(ends) - min(ends) < 0.2 * max(ends):
+            pad = 0.25 * (max(ends) - min(ends)) or 0.01 * max(ends)
             ax.set_ylim(min(ends) - pad, max(ends) + pad)
-            title += " (axis does not start at 0)"
-        ax.set_title(title, fontsize=10)
+            heading += " (axis does not start at 0)"
+        ax.set_title(heading, fontsize=10)
         ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
         fig.tight_layout()
-        name = f"bars_{_safe(family)}.png"
+        name = f"bars_{_safe(title)}.png"
         fig.savefig(plot_dir / name, dpi=110)
         plt.close(fig)
-        written.append(name)
+        written.append((title, name))
     return written
 
 
 def retrieval_grid(table) -> dict[str, tuple[list[int], list[float], np.ndarray]]:
-    """cell -> (lengths, depths, accuracy[depth, length]) averaged over seeds and other axes."""
+    """cell -> (lengths, depths, accuracy[depth, length]), mean over seeds.
+
+    Uses ``retrieval/acc_len<L>_depth<D>`` where present; otherwise averages the keys that carry
+    further axes (``..._depth<D>_n<N>_r<R>``) over those axes.
+    """
     grids = {}
     for cell, per_metric in table.items():
-        cells_acc: dict[tuple[int, float], list] = defaultdict(list)
+        exact: dict[tuple[int, float], list] = defaultdict(list)
+        finer: dict[tuple[int, float], list] = defaultdict(list)
         for metric, seeds in per_metric.items():
             match = RETRIEVAL_KEY.match(metric)
             if match:
-                cells_acc[(int(match.group("length")), float(match.group("depth")))].extend(seeds.values())
+                key = (int(match.group("length")), float(match.group("depth")))
+                (finer if match.group("rest") else exact)[key].extend(seeds.values())
+        # A key with no further axes is already the mean over them: prefer it to re-averaging.
+        cells_acc = {key: exact.get(key) or finer[key] for key in set(exact) | set(finer)}
         if cells_acc:
             lengths = sorted({k[0] for k in cells_acc})
             depths = sorted({k[1] for k in cells_acc})
@@ -568,6 +607,9 @@ def left_out_rows(runs: list[Run]) -> list[list[str]]:
         elif run.status == "failed":
             error = str(s.get("error") or "").strip()
             detail = error.splitlines()[0][:200] if error else "no error message"
+        elif run.status == "stopped":
+            where = f"stopped at step {s.get('step', '?')}"
+            detail = "stopped early on request; rerun the same command to finish"
         elif run.status == "completed":
             detail = "completed but final_val_loss missing or not finite"
         else:
@@ -627,8 +669,8 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
         plots.append(("retrieval accuracy over length and depth", "retrieval_heatmap.png"))
     else:
         plot_notes.append("No probe keys of the form `retrieval/acc_len<L>_depth<D>`; retrieval heatmap skipped.")
-    for name in plot_bars([r for r in rows if r.n], plot_dir, skip=retrieval_metrics):
-        plots.append((f"bar chart ({name[5:-4]})", name))
+    for title, name in plot_bars([r for r in rows if r.n], plot_dir, skip=retrieval_metrics):
+        plots.append((f"bar chart, {title}", name))
     if eff and eff[0]:
         comparisons, fits, cells_by_choice, _ = eff
         efficiency.plot_sweep(plot_dir / "efficiency.png", comparisons[0].axis, cells_by_choice, fits, comparisons)

@@ -175,12 +175,32 @@ def test_seeds_sentence_in_words(built):
 
 def test_plots_written(built):
     grid, _, md = built
-    for name in ["val_loss.png", "lambda.png", "retrieval_heatmap.png", "bars_loss.png", "bars_copy.png"]:
+    for name in ["val_loss.png", "lambda.png", "retrieval_heatmap.png", "bars_final_validation_loss.png",
+                 "bars_copy_within_-1_1.png"]:
         path = grid / "plots" / name
         assert path.exists() and path.stat().st_size > 1000, name
         assert f"(plots/{name})" in md
-    # Retrieval keys go to the heatmap, not to a crowded bar chart.
-    assert not (grid / "plots" / "bars_retrieval.png").exists()
+    # Retrieval grid keys go to the heatmap, not to a crowded bar chart.
+    assert sorted(p.name for p in (grid / "plots").glob("bars_*")) == [
+        "bars_copy_within_-1_1.png", "bars_final_validation_loss.png"]
+
+
+def test_bar_groups_keep_one_kind_of_number_per_chart():
+    def row(metric, mean):
+        return report.Row("c", metric, 3, mean=mean)
+
+    rows = [row("final_val_loss", 3.2), row("attention/layer0/asked_mass", 0.4),
+            row("attention/layer1/asked_mass", 0.5), row("attention/layer0/asked_to_distractor", 12.0),
+            row("quantization/loss_w8", 3.3), row("quantization/increase_w8", 0.01)]
+    rows += [row(f"position/loss_pos{i}_{i + 1}", 3.0) for i in range(20)]
+    groups = report.bar_groups(rows, skip=set())
+    assert groups["final validation loss"] == [("final_val_loss", "final_val_loss")]
+    assert groups["attention: asked_mass"] == [("attention/layer0/asked_mass", "layer0"),
+                                               ("attention/layer1/asked_mass", "layer1")]
+    assert groups["attention: asked_to_distractor"] == [("attention/layer0/asked_to_distractor", "layer0")]
+    assert groups["quantization (larger numbers)"] == [("quantization/loss_w8", "loss_w8")]
+    assert groups["quantization (within [-1, 1])"] == [("quantization/increase_w8", "increase_w8")]
+    assert [len(groups[f"position (larger numbers) (part {k} of 2)"]) for k in (1, 2)] == [16, 4]
 
 
 def test_event_files_read_back_from_run_folder_and_tb_subfolder(grid):
@@ -205,6 +225,19 @@ def test_retrieval_grid_averages_over_other_axes_and_seeds():
     assert lengths == [64, 128] and depths == [0.5]
     assert acc.tolist() == [[pytest.approx(0.5), pytest.approx(1.0)]]
     assert report.retrieval_grid({"c": {"copy/acc": {0: 1.0}}}) == {}
+    # Where the plain length x depth key exists it is used as is (it already averages the rest).
+    table["c"]["retrieval/acc_len64_depth0.5"] = {0: 0.3, 1: 0.3}
+    _, _, acc = report.retrieval_grid(table)["c"]
+    assert acc[0, 0] == pytest.approx(0.3)
+
+
+def test_stopped_run_listed_with_its_step(tmp_path):
+    _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={}))
+    _write_run(tmp_path / "b", {"status": "stopped", "attention": "standard", "seed": 1,
+                                "cell": "attention=standard", "step": 40})
+    assert report.main([str(tmp_path)]) == 0
+    md = (tmp_path / "report.md").read_text()
+    assert "| `b` | stopped | stopped at step 40 | stopped early on request" in md
 
 
 def test_console_table_printed(grid, capsys):

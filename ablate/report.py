@@ -64,6 +64,7 @@ FAIRNESS_KEYS = [("params", "params"), ("non_embedding_params", "non-emb params"
                  ("flops_per_token", "FLOPs/token"), ("tokens", "tokens"), ("train_flops", "train FLOPs")]
 RETRIEVAL_KEY = re.compile(r"^retrieval/acc[/_]len(?P<length>\d+)[/_]depth(?P<depth>\d+(?:\.\d+)?)(?P<rest>.*)$")
 LAMBDA_TAG = re.compile(r"^lambda/layer_(\d+)$")
+OWN_PLOTS = ("val_loss.png", "lambda.png", "retrieval_heatmap.png", "efficiency.png")
 CELL_PART = re.compile(r"([^\s,=]+)=([^\s,]+)")
 
 
@@ -653,6 +654,8 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
 
     plot_dir = grid / "plots"
     plot_dir.mkdir(exist_ok=True)
+    for stale in [*plot_dir.glob("bars_*.png"), *(plot_dir / n for n in OWN_PLOTS)]:
+        stale.unlink(missing_ok=True)  # ours from an earlier report of this grid
     plots, plot_notes = [], []
     if plot_val_loss(runs, plot_dir / "val_loss.png"):
         plots.append(("validation loss over training", "val_loss.png"))

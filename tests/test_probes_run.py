@@ -118,3 +118,12 @@ def test_item_longer_than_the_window_is_refused():
     c.probe_sets["retrieval"][0]["tokens"] = list(range(1, SEQ_LEN + 3))
     with pytest.raises(ValueError, match="seq_len \\+ 1 = 65"):
         run_probes(decoder(StandardAttention), c, {"enabled": ["retrieval"], "images": False})
+
+
+def test_config_group_files_resolve_to_the_documented_defaults():
+    default = resolve_config(OmegaConf.load(CONF_DIR / "probes" / "default.yaml"))  # a DictConfig, as Hydra gives
+    assert default["enabled"] == list(PROBE_NAMES) and default["images"] is True
+    assert (default["n_images"], default["val_windows"], default["position_buckets"]) == (2, 8, 8)
+    assert default["max_items"] is None and default["every_tokens"] is None
+    off = resolve_config(OmegaConf.load(CONF_DIR / "probes" / "off.yaml"))
+    assert off["enabled"] == [] and off["images"] is False

@@ -70,7 +70,7 @@ def draw(item: dict, layer_ids: Sequence[int], rows: Sequence[np.ndarray], title
         ax.set_ylabel(f"layer {layer}")
     axes[0].set_title(title, fontsize=9)
     axes[-1].set_xlabel("key position (green: asked needle, red: distractors; black: head mean)")
-    fig.tight_layout()
+    fig.subplots_adjust(left=0.11, right=0.98, top=1 - 0.35 / fig.get_figheight(), bottom=0.45 / fig.get_figheight(), hspace=0.35)
     canvas.draw()
     image = np.asarray(canvas.buffer_rgba())[..., :3].copy()
     return image

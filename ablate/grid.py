@@ -112,10 +112,23 @@ def one_line(exc: BaseException) -> str:
     return " | ".join(keep[:3]) if keep else type(exc).__name__
 
 
+def find_baseline(cells: list[Cell], baseline: str | None) -> Cell:
+    """The cell whose overrides include every ``key=value`` of ``baseline`` (the recipe names
+    it without the overrides that all cells share, such as ``budget=smoke``)."""
+    if baseline is None:
+        return next((c for c in cells if "attention=standard" in c.name.split(",")), cells[0])
+    wanted = set(baseline.split(","))
+    matches = [c for c in cells if wanted <= set(c.name.split(","))]
+    if len(matches) != 1:
+        raise ConfigError(
+            f"grid.baseline={baseline!r}: matches {len(matches)} cells of this grid, needs exactly one; "
+            f"cells: {'; '.join(c.name for c in cells)}"
+        )
+    return matches[0]
+
+
 def fairness_table(cells: list[Cell], baseline: str) -> list[dict]:
-    base = next((c for c in cells if c.name == baseline), None)
-    if base is None:
-        raise ConfigError(f"grid.baseline={baseline!r}: not a cell of this grid; cells: {', '.join(c.name for c in cells)}")
+    base = next(c for c in cells if c.name == baseline)
     rows = []
     for c in cells:
         ratios = compare(c.accounting, base.accounting)

@@ -33,7 +33,7 @@ def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
 
 def preflight(argv: list[str]) -> dict | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
-    from .grid import check_cells, check_fairness, compose_checked, expand_jobs
+    from .grid import check_cells, check_fairness, compose_checked, expand_jobs, find_baseline
 
     multirun, design, _ = _split_argv(argv)
     if not multirun:
@@ -42,7 +42,7 @@ def preflight(argv: list[str]) -> dict | None:
     jobs, base = expand_jobs(design)
     cells, _ = check_cells(jobs)
     grid = base.grid
-    baseline = grid.baseline or next((c.name for c in cells if "attention=standard" in c.name.split(",")), cells[0].name)
+    baseline = find_baseline(cells, grid.baseline).name
     rows = check_fairness(cells, baseline, grid.tolerance, list(grid.unequal_axes))
     varied = sorted({o.split("=", 1)[0] for c in cells for o in c.overrides
                      if len({dict(x.split("=", 1) for x in cc.overrides if "=" in x).get(o.split("=", 1)[0]) for cc in cells}) > 1})

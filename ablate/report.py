@@ -256,8 +256,13 @@ class Row:
                 "" if is_ref else self.n_paired, num(self.seeds_needed), self.reference, self.note]
 
 
+def _natural(text: str) -> tuple:
+    """Sort key that orders layer2 before layer10 and pos32 before pos128."""
+    return tuple((0, int(t), "") if t.isdigit() else (1, 0, t) for t in re.split(r"(\d+)", text) if t)
+
+
 def metric_rows(table, refs: dict[str, str], halfwidth: float) -> list[Row]:
-    metrics = sorted({m for per in table.values() for m in per}, key=lambda m: (m != LOSS, m))
+    metrics = sorted({m for per in table.values() for m in per}, key=lambda m: (m != LOSS, _natural(m)))
     rows = []
     for metric in metrics:
         for cell in sorted(refs):
@@ -369,7 +374,7 @@ def _aligned(curves: list[tuple[np.ndarray, np.ndarray]]):
     return grid, np.stack([np.interp(grid, s, v) for s, v in curves])
 
 
-def plot_val_loss(runs: list[Run], path: Path) -> list[str]:
+def plot_val_loss(runs: list[Run], path: Path, labels: dict[str, str]) -> list[str]:
     plt = _plt()
     by_cell = defaultdict(list)
     for run in runs:
@@ -382,7 +387,7 @@ def plot_val_loss(runs: list[Run], path: Path) -> list[str]:
         steps, stacked = _aligned(by_cell[cell])
         if steps.size == 0:
             continue
-        line, = ax.plot(steps, stacked.mean(axis=0), label=f"{cell} ({len(by_cell[cell])} seeds)")
+        line, = ax.plot(steps, stacked.mean(axis=0), label=f"{labels[cell]} ({len(by_cell[cell])} seeds)")
         ax.fill_between(steps, stacked.min(axis=0), stacked.max(axis=0), color=line.get_color(), alpha=0.2)
     ax.set_xlabel("tokens seen")
     ax.set_ylabel("validation loss (nats)")
@@ -394,7 +399,7 @@ def plot_val_loss(runs: list[Run], path: Path) -> list[str]:
     return sorted(by_cell)
 
 
-def plot_lambda(runs: list[Run], path: Path) -> bool:
+def plot_lambda(runs: list[Run], path: Path, labels: dict[str, str]) -> bool:
     by_cell: dict[str, dict[int, list]] = defaultdict(lambda: defaultdict(list))
     for run in runs:
         if not run.usable:
@@ -414,7 +419,7 @@ def plot_lambda(runs: list[Run], path: Path) -> bool:
         for i, layer in enumerate(layers):
             steps, stacked = _aligned(by_cell[cell][layer])
             ax.plot(steps, stacked.mean(axis=0), color=cmap(i / max(1, len(layers) - 1)), label=f"layer {layer}")
-        ax.set_title(f"lambda per layer: {cell}", fontsize=9)
+        ax.set_title(f"lambda per layer: {labels[cell]}", fontsize=9)
         ax.set_xlabel("tokens seen")
         ax.set_ylabel("lambda (mean over seeds)")
         ax.legend(fontsize=7)
@@ -422,6 +427,16 @@ def plot_lambda(runs: list[Run], path: Path) -> bool:
     fig.savefig(path, dpi=110)
     plt.close(fig)
     return True
+
+
+def short_labels(cells: list[str]) -> tuple[dict[str, str], list[str]]:
+    """Plot labels without the ``key=value`` parts every cell shares; also returns those parts."""
+    parts = {c: c.split(",") for c in cells}
+    shared = [p for p in parts[cells[0]] if all(p in parts[c] for c in cells)] if len(cells) > 1 else []
+    labels = {c: ",".join(p for p in parts[c] if p not in shared) or c for c in cells}
+    if len(set(labels.values())) < len(cells):
+        return {c: c for c in cells}, []
+    return labels, shared
 
 
 def _safe(name: str) -> str:
@@ -451,7 +466,7 @@ def bar_groups(rows: list[Row], skip: set[str], per_chart: int = 16) -> dict[str
             groups[f"{parts[0]}: {parts[-1]}"].append((metric, "/".join(parts[1:-1])))
         else:
             family = parts[0] if len(parts) == 2 else "probes"
-            scale = "within [-1, 1]" if largest[metric] <= 1.0 else "larger numbers"
+            scale = "within -1 to 1" if largest[metric] <= 1.0 else "larger numbers"
             groups[f"{family} ({scale})"].append((metric, parts[-1]))
     charts = {}
     for title, members in groups.items():
@@ -461,7 +476,7 @@ def bar_groups(rows: list[Row], skip: set[str], per_chart: int = 16) -> dict[str
     return charts
 
 
-def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str]) -> list[tuple[str, str]]:
+def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str], labels: dict[str, str]) -> list[tuple[str, str]]:
     """Grouped bar charts (see bar_groups): bars = cells, whiskers = 95% t interval.
 
     Returns (title, file name) per chart written.
@@ -471,7 +486,8 @@ def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str]) -> list[tuple[str
     cells = sorted({r.cell for r in rows})
     lookup = {(r.cell, r.metric): r for r in rows}
     for title, members in bar_groups(rows, skip).items():
-        fig, ax = plt.subplots(figsize=(max(7.0, 0.45 * len(members) * len(cells) + 3), 4.2))
+        legend_width = 0.07 * max(len(labels[c]) for c in cells) + 0.6
+        fig, ax = plt.subplots(figsize=(max(5.0, 0.45 * len(members) * len(cells) + 2) + legend_width, 4.2))
         width = 0.8 / len(cells)
         ends = []
         for j, cell in enumerate(cells):
@@ -485,11 +501,11 @@ def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str]) -> list[tuple[str
                 errs[1].append(row.ci_high - mean if has_ci else 0.0)
                 ends += [v for v in ((row.ci_low, row.ci_high, mean) if has_ci else (mean,)) if math.isfinite(v)]
             ax.bar(np.arange(len(members)) + (j - (len(cells) - 1) / 2) * width, means, width, yerr=errs,
-                   capsize=3, label=cell)
-        labels = [label for _, label in members]
-        tilt = len(members) > 3 or max(len(x) for x in labels) > 14
+                   capsize=3, label=labels[cell])
+        ticks = [tick for _, tick in members]
+        tilt = len(members) > 3 or max(len(x) for x in ticks) > 14
         ax.set_xticks(np.arange(len(members)))
-        ax.set_xticklabels(labels, rotation=30 if tilt else 0, ha="right" if tilt else "center", fontsize=8)
+        ax.set_xticklabels(ticks, rotation=30 if tilt else 0, ha="right" if tilt else "center", fontsize=8)
         heading = f"{title}\nmean over seeds, whiskers = 95% t interval"
         # Small differences on a large positive level (losses) vanish on an axis from 0: zoom in.
         if ends and min(ends) > 0 and max(ends) - min(ends) < 0.2 * max(ends):
@@ -533,7 +549,7 @@ def retrieval_grid(table) -> dict[str, tuple[list[int], list[float], np.ndarray]
     return grids
 
 
-def plot_retrieval(grids, path: Path) -> None:
+def plot_retrieval(grids, path: Path, labels: dict[str, str]) -> None:
     plt = _plt()
     cells = sorted(grids)
     fig, axes = plt.subplots(1, len(cells), figsize=(4.5 * len(cells) + 1, 3.8), squeeze=False,
@@ -546,7 +562,7 @@ def plot_retrieval(grids, path: Path) -> None:
         ax.set_yticks(range(len(depths)), [f"{v:g}" for v in depths])
         ax.set_xlabel("context length")
         ax.set_ylabel("depth")
-        ax.set_title(cell, fontsize=9)
+        ax.set_title(labels[cell], fontsize=9)
         for (i, j), value in np.ndenumerate(acc):
             if math.isfinite(value):
                 ax.text(j, i, f"{value:.2f}", ha="center", va="center", fontsize=7,
@@ -657,22 +673,23 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     for stale in [*plot_dir.glob("bars_*.png"), *(plot_dir / n for n in OWN_PLOTS)]:
         stale.unlink(missing_ok=True)  # ours from an earlier report of this grid
     plots, plot_notes = [], []
-    if plot_val_loss(runs, plot_dir / "val_loss.png"):
+    labels, shared = short_labels(cells)
+    if plot_val_loss(runs, plot_dir / "val_loss.png", labels):
         plots.append(("validation loss over training", "val_loss.png"))
     else:
         plot_notes.append("No `loss/val` curves found in the event files; validation-loss plot skipped.")
-    if plot_lambda(runs, plot_dir / "lambda.png"):
+    if plot_lambda(runs, plot_dir / "lambda.png", labels):
         plots.append(("lambda per layer over training", "lambda.png"))
     else:
         plot_notes.append("No `lambda/layer_<i>` tags found; lambda plot skipped.")
     grids = retrieval_grid(table)
     retrieval_metrics = {m for per in table.values() for m in per if RETRIEVAL_KEY.match(m)}
     if grids:
-        plot_retrieval(grids, plot_dir / "retrieval_heatmap.png")
+        plot_retrieval(grids, plot_dir / "retrieval_heatmap.png", labels)
         plots.append(("retrieval accuracy over length and depth", "retrieval_heatmap.png"))
     else:
         plot_notes.append("No probe keys of the form `retrieval/acc_len<L>_depth<D>`; retrieval heatmap skipped.")
-    for title, name in plot_bars([r for r in rows if r.n], plot_dir, skip=retrieval_metrics):
+    for title, name in plot_bars([r for r in rows if r.n], plot_dir, retrieval_metrics, labels):
         plots.append((f"bar chart, {title}", name))
     if eff and eff[0]:
         comparisons, fits, cells_by_choice, _ = eff
@@ -687,8 +704,12 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
         n_by_status["averaged" if run.usable else run.status] += 1
     md = [f"# Ablation report: {grid.name}", ""]
     md.append(f"- Grid folder: `{grid}`")
-    md.append(f"- Recipe: {info['recipe']}" if info.get("recipe") else
-              "- Recipe: not stated (" + ("no grid.json" if not info else "grid.json has no recipe") + ")")
+    if info.get("recipe"):
+        md.append(f"- Recipe: {info['recipe']}")
+    elif info.get("name"):
+        md.append(f"- Grid: {info['name']} (grid.json names no recipe)")
+    else:
+        md.append("- Recipe: not stated (" + ("no grid.json" if not info else "grid.json names none") + ")")
     md.append(f"- Baseline: `{baseline}` ({how})")
     if sweep_key and any(refs[c] != baseline for c in cells):
         md.append(f"- Sweep over `{sweep_key}`: each cell is compared with the baseline's design at the same sweep point.")
@@ -739,6 +760,8 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     md += ["", "## Plots", ""]
     md += [f"- {title}: ![{title}](plots/{name})" for title, name in plots]
     md += [f"- {note}" for note in plot_notes]
+    if shared:
+        md.append(f"- Plot labels leave out the choices every cell shares: {', '.join(f'`{p}`' for p in shared)}.")
     report = "\n".join(md) + "\n"
     (grid / "report.md").write_text(report)
 

@@ -176,13 +176,13 @@ def test_seeds_sentence_in_words(built):
 def test_plots_written(built):
     grid, _, md = built
     for name in ["val_loss.png", "lambda.png", "retrieval_heatmap.png", "bars_final_validation_loss.png",
-                 "bars_copy_within_-1_1.png"]:
+                 "bars_copy_within_-1_to_1.png"]:
         path = grid / "plots" / name
         assert path.exists() and path.stat().st_size > 1000, name
         assert f"(plots/{name})" in md
     # Retrieval grid keys go to the heatmap, not to a crowded bar chart.
     assert sorted(p.name for p in (grid / "plots").glob("bars_*")) == [
-        "bars_copy_within_-1_1.png", "bars_final_validation_loss.png"]
+        "bars_copy_within_-1_to_1.png", "bars_final_validation_loss.png"]
 
 
 def test_bar_groups_keep_one_kind_of_number_per_chart():
@@ -199,7 +199,7 @@ def test_bar_groups_keep_one_kind_of_number_per_chart():
                                                ("attention/layer1/asked_mass", "layer1")]
     assert groups["attention: asked_to_distractor"] == [("attention/layer0/asked_to_distractor", "layer0")]
     assert groups["quantization (larger numbers)"] == [("quantization/loss_w8", "loss_w8")]
-    assert groups["quantization (within [-1, 1])"] == [("quantization/increase_w8", "increase_w8")]
+    assert groups["quantization (within -1 to 1)"] == [("quantization/increase_w8", "increase_w8")]
     assert [len(groups[f"position (larger numbers) (part {k} of 2)"]) for k in (1, 2)] == [16, 4]
 
 
@@ -229,6 +229,14 @@ def test_retrieval_grid_averages_over_other_axes_and_seeds():
     table["c"]["retrieval/acc_len64_depth0.5"] = {0: 0.3, 1: 0.3}
     _, _, acc = report.retrieval_grid(table)["c"]
     assert acc[0, 0] == pytest.approx(0.3)
+
+
+def test_plot_labels_drop_choices_all_cells_share():
+    labels, shared = report.short_labels(["attention=standard,budget=smoke", "attention=differential,budget=smoke"])
+    assert labels == {"attention=standard,budget=smoke": "attention=standard",
+                      "attention=differential,budget=smoke": "attention=differential"}
+    assert shared == ["budget=smoke"]
+    assert report.short_labels(["attention=standard"]) == ({"attention=standard": "attention=standard"}, [])
 
 
 def test_stopped_run_listed_with_its_step(tmp_path):

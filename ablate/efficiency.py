@@ -10,7 +10,8 @@ well scaled). The fit uses scipy.optimize.curve_fit. When the fit is ill-conditi
 than 4 distinct x values, no convergence, no finite covariance, a parameter pinned at a bound,
 or a parameter whose standard error exceeds its value) the curve falls back to a straight line
 in log-log space, log L = log A - alpha * log(x / x_ref), i.e. the same formula with E = 0; the
-result says which curve was used and why.
+result says which curve was used and why. When one of the two compared curves falls back, both
+use the log-log line, so that like is compared with like.
 
 Size ratio. For a candidate curve L_c and the baseline curve L_b, at a point x:
 
@@ -264,6 +265,12 @@ def compare(baseline_name: str, baseline_cells: Cells, candidate_name: str, cand
             raise EfficiencyError(f"{name}: needs at least 3 distinct {axis} values, found {len(cells)}")
     base_fit = fit_loss_curve(*_stack(baseline_cells))
     cand_fit = fit_loss_curve(*_stack(candidate_cells))
+    # Compare like with like: when one curve had to fall back, both use the log-log line.
+    if base_fit.kind != cand_fit.kind:
+        if base_fit.kind == POWER_LAW:
+            base_fit = fit_log_line(*_stack(baseline_cells), note=f"log-log line to match {candidate_name}'s fallback")
+        else:
+            cand_fit = fit_log_line(*_stack(candidate_cells), note=f"log-log line to match {baseline_name}'s fallback")
     for name, curve in ((baseline_name, base_fit), (candidate_name, cand_fit)):
         if curve.exponent <= 0:
             raise EfficiencyError(f"{name}: loss does not fall with {axis} (fitted exponent {curve.exponent:.3g})")

@@ -105,6 +105,16 @@ def test_bootstrap_interval_covers_true_ratio_near_nominal_rate():
     assert 0.80 <= covered / sims <= 0.99
 
 
+def test_compare_uses_one_curve_kind_for_both():
+    # Baseline with a floor (power law fits), candidate without (falls back): both become lines.
+    rng = np.random.default_rng(9)
+    base = _cells(2.0, 100.0, 0.35, SIZES, 3, 0.002, rng)
+    cand = _cells(0.0, 20.0, 0.15, SIZES, 3, 0.002, rng)
+    _, base_fit, cand_fit = compare("standard", base, "differential", cand, "params", resamples=20)
+    assert cand_fit.kind == LOG_LINE and base_fit.kind == LOG_LINE
+    assert "to match differential" in base_fit.note
+
+
 def test_compare_refuses_too_few_sizes_and_rising_loss():
     rng = np.random.default_rng(8)
     with pytest.raises(EfficiencyError, match="at least 3 distinct"):

@@ -5,7 +5,6 @@ from __future__ import annotations
 import math
 
 import torch
-import torch.nn.functional as F
 from torch import nn
 
 from .common import causal_softmax, require_divisible, require_positive_int
@@ -27,6 +26,11 @@ def resolve_lambda_init(lambda_init, layer_index: int) -> float:
     if not 0.0 < float(lambda_init) < 1.0:
         raise ValueError(f"lambda_init={lambda_init!r} must be 'depth' or a number in (0, 1)")
     return float(lambda_init)
+
+
+def _future_bias(time: int, like: torch.Tensor) -> torch.Tensor:
+    """``[time, time]`` additive mask: 0 where a query may attend, -inf on future keys."""
+    return torch.full((time, time), float("-inf"), dtype=like.dtype, device=like.device).triu(1)
 
 
 class DifferentialAttention(nn.Module):
@@ -113,11 +117,17 @@ class DifferentialAttention(nn.Module):
             + self.lambda_init
         )
 
-    def _queries_keys(self, x: torch.Tensor) -> tuple[torch.Tensor, ...]:
-        """Rotated queries and keys of both groups, each ``[batch, heads, time, head_dim]``."""
+    def _rotated_queries_keys(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Rotated queries and keys ``[batch, 2 * heads, time, head_dim]``: group 1's heads, then
+        group 2's."""
         b, n, _ = x.shape
         q = self.rotary(self.q_proj(x).view(b, n, 2 * self.n_heads, self.head_dim).transpose(1, 2))
         k = self.rotary(self.k_proj(x).view(b, n, 2 * self.n_heads, self.head_dim).transpose(1, 2))
+        return q, k
+
+    def _queries_keys(self, x: torch.Tensor) -> tuple[torch.Tensor, ...]:
+        """Rotated queries and keys of both groups, each ``[batch, heads, time, head_dim]``."""
+        q, k = self._rotated_queries_keys(x)
         h = self.n_heads
         return q[:, :h], k[:, :h], q[:, h:], k[:, h:]
 
@@ -131,13 +141,21 @@ class DifferentialAttention(nn.Module):
         return self.out_proj(o.transpose(1, 2).reshape(shape))
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        q1, k1, q2, k2 = self._queries_keys(x)
+        b, n, _ = x.shape
+        h, d = self.n_heads, self.head_dim
+        q, k = self._rotated_queries_keys(x)
         v = self._values(x)
-        # (A1 - lambda A2) V = A1 V - lambda A2 V: two fused kernels, no attention matrix kept.
-        o1 = F.scaled_dot_product_attention(q1, k1, v, is_causal=True)
-        o2 = F.scaled_dot_product_attention(q2, k2, v, is_causal=True)
-        lam = self.lambda_value().to(o1.dtype)
-        return self._finish(o1 - lam * o2, x.shape)
+        lam = self.lambda_value().to(x.dtype)
+        # Scores of both groups in one batched product, the causal mask added as -inf.
+        scores = torch.baddbmm(
+            _future_bias(n, x), q.reshape(b * 2 * h, n, d), k.reshape(b * 2 * h, n, d).transpose(1, 2), alpha=d**-0.5
+        )
+        a = scores.softmax(dim=-1)  # [A_1; A_2] per head
+        # (A1 - lambda A2) V = A1 V + A2 (-lambda V): both value products in one batched product,
+        # lambda applied to the values rather than to a [time, time] map.
+        signed_v = torch.stack([v, -lam * v], dim=1).reshape(b * 2 * h, n, 2 * d)
+        o = torch.bmm(a, signed_v).view(b, 2, h, n, 2 * d).sum(dim=1)
+        return self._finish(o, x.shape)
 
     def attention_weights(self, x: torch.Tensor) -> torch.Tensor:
         q1, k1, q2, k2 = self._queries_keys(x)

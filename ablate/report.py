@@ -813,6 +813,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--resamples", type=int, default=1000, help="bootstrap resamples for the efficiency estimate")
     parser.add_argument("--bootstrap-seed", type=int, default=0, help="seed of the bootstrap resampling")
     args = parser.parse_args(argv)
+    if args.resamples < 1:
+        print(f"ablate-report: --resamples must be at least 1, got {args.resamples}", file=sys.stderr)
+        return 2
     try:
         _, console = build_report(args.grid, args.target_halfwidth, args.resamples, args.bootstrap_seed)
     except ReportError as exc:

@@ -132,6 +132,11 @@ def find_runs(grid: Path) -> list[Run]:
     return runs
 
 
+def unfinished_folders(grid: Path) -> list[Path]:
+    """Run folders (holding config.yaml) without a summary.json: unfinished or interrupted runs."""
+    return sorted(p.parent for p in grid.rglob("config.yaml") if not (p.parent / "summary.json").exists())
+
+
 def event_files(folder: Path) -> list[Path]:
     """Event files anywhere under a run folder, except inside nested run folders."""
     found = []
@@ -617,7 +622,7 @@ def left_out_rows(runs: list[Run]) -> list[list[str]]:
             continue
         s = run.summary
         last = max((int(steps[-1]) for steps, _ in run.scalars.values() if steps.size), default=None)
-        where = f"last logged at {last} tokens" if last is not None else "no curves logged"
+        where = f"last logged at {last:,} tokens" if last is not None else "no curves logged"
         if run.status == "diverged":
             where = f"diverged at {_f(s.get('diverged_at_tokens'))} tokens"
             detail = f"last finite loss {_f(s.get('last_finite_loss'))}"
@@ -756,6 +761,10 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
         md += [f"- {note}" for note in notes]
     md += ["", "## Runs left out of the averages", ""]
     left = left_out_rows(runs)
+    for folder in unfinished_folders(grid):
+        steps = [int(st[-1]) for st, _ in read_scalars(folder).values() if st.size]
+        where = f"last logged at {max(steps):,} tokens" if steps else "no curves logged"
+        left.append([f"`{folder.relative_to(grid)}`", "no summary", where, "unfinished or interrupted (no summary.json)"])
     md += _table(["run folder", "status", "where", "detail"], left) if left else ["None: every run completed."]
     md += ["", "## Plots", ""]
     md += [f"- {title}: ![{title}](plots/{name})" for title, name in plots]
@@ -799,7 +808,7 @@ def console_table(rows, baseline, how, left, comparisons, grid) -> str:
     lines += ["  ".join(c.ljust(w) for c, w in zip(b, widths)) for b in body]
     lines.append(f"* baseline ({how})")
     if left:
-        lines.append(f"{len(left)} run(s) left out of the averages (failed or diverged): see report.md")
+        lines.append(f"{len(left)} run(s) left out of the averages (failed, diverged or unfinished): see report.md")
     lines += [comp.sentence() for comp in comparisons]
     lines.append(f"wrote {grid / 'report.md'}, {grid / 'summary.csv'}, {grid / 'plots'}/")
     return "\n".join(lines)

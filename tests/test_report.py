@@ -248,11 +248,26 @@ def test_stopped_run_listed_with_its_step(tmp_path):
     assert "| `b` | stopped | stopped at step 40 | stopped early on request" in md
 
 
+def test_unfinished_run_folder_without_summary_is_listed(tmp_path):
+    _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={}))
+    unfinished = tmp_path / "b"
+    unfinished.mkdir()
+    (unfinished / "config.yaml").write_text("seed: 1\n")
+    from torch.utils.tensorboard import SummaryWriter
+
+    writer = SummaryWriter(log_dir=str(unfinished))
+    writer.add_scalar("loss/train", 6.0, global_step=8192)
+    writer.close()
+    assert report.main([str(tmp_path)]) == 0
+    md = (tmp_path / "report.md").read_text()
+    assert "| `b` | no summary | last logged at 8,192 tokens | unfinished or interrupted" in md
+
+
 def test_console_table_printed(grid, capsys):
     assert report.main([str(grid), "--target-halfwidth", "0.02"]) == 0
     out = capsys.readouterr().out
     assert out.splitlines()[0].split()[:4] == ["cell", "seeds", "final", "val"]
-    assert "attention=standard *" in out and "1 run(s)" not in out and "2 run(s) left out" in out
+    assert "attention=standard *" in out and "1 run(s)" not in out and "2 run(s) left out of the averages" in out
     assert "+/-0.02 nats" in (grid / "report.md").read_text()
 
 

@@ -494,24 +494,31 @@ def plot_bars(rows: list[Row], plot_dir: Path, skip: set[str], labels: dict[str,
         legend_width = 0.07 * max(len(labels[c]) for c in cells) + 0.6
         fig, ax = plt.subplots(figsize=(max(5.0, 0.45 * len(members) * len(cells) + 2) + legend_width, 4.2))
         width = 0.8 / len(cells)
-        ends = []
+        ends, any_single = [], False
         for j, cell in enumerate(cells):
-            means, errs = [], [[], []]
+            means, errs, single = [], [[], []], []
             for metric, _ in members:
                 row = lookup.get((cell, metric))
                 mean = row.mean if row and row.n else math.nan
                 means.append(mean)
                 has_ci = bool(row) and math.isfinite(row.ci_low)
-                errs[0].append(mean - row.ci_low if has_ci else 0.0)
-                errs[1].append(row.ci_high - mean if has_ci else 0.0)
+                errs[0].append(mean - row.ci_low if has_ci else math.nan)
+                errs[1].append(row.ci_high - mean if has_ci else math.nan)
+                single.append(not has_ci)
                 ends += [v for v in ((row.ci_low, row.ci_high, mean) if has_ci else (mean,)) if math.isfinite(v)]
-            ax.bar(np.arange(len(members)) + (j - (len(cells) - 1) / 2) * width, means, width, yerr=errs,
-                   capsize=3, label=labels[cell])
+            bars = ax.bar(np.arange(len(members)) + (j - (len(cells) - 1) / 2) * width, means, width, yerr=errs,
+                          capsize=3, label=labels[cell])
+            for bar, no_interval in zip(bars, single):
+                if no_interval:
+                    bar.set_hatch("//")
+                    any_single = True
         ticks = [tick for _, tick in members]
         tilt = len(members) > 3 or max(len(x) for x in ticks) > 14
         ax.set_xticks(np.arange(len(members)))
         ax.set_xticklabels(ticks, rotation=30 if tilt else 0, ha="right" if tilt else "center", fontsize=8)
         heading = f"{title}\nmean over seeds, whiskers = 95% t interval"
+        if any_single:
+            heading += "; hatched = 1 seed, no interval"
         # Small differences on a large positive level (losses) vanish on an axis from 0: zoom in.
         if ends and min(ends) > 0 and max(ends) - min(ends) < 0.2 * max(ends):
             pad = 0.25 * (max(ends) - min(ends)) or 0.01 * max(ends)

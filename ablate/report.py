@@ -392,7 +392,9 @@ def plot_val_loss(runs: list[Run], path: Path, labels: dict[str, str]) -> list[s
         steps, stacked = _aligned(by_cell[cell])
         if steps.size == 0:
             continue
-        line, = ax.plot(steps, stacked.mean(axis=0), label=f"{labels[cell]} ({len(by_cell[cell])} seeds)")
+        n = len(by_cell[cell])
+        line, = ax.plot(steps, stacked.mean(axis=0), marker="o" if steps.size <= 20 else None, markersize=3,
+                        label=f"{labels[cell]} ({n} seed{'s' if n != 1 else ''})")
         ax.fill_between(steps, stacked.min(axis=0), stacked.max(axis=0), color=line.get_color(), alpha=0.2)
     ax.set_xlabel("tokens seen")
     ax.set_ylabel("validation loss (nats)")

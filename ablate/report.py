@@ -114,6 +114,11 @@ class Run:
                 values[str(name)] = float(value)
         return {k: v for k, v in values.items() if math.isfinite(v)}
 
+    def rejected_probes(self) -> list[str]:
+        """Probe names whose value is not a finite number (left out of every average)."""
+        probes = self.summary.get("probes") or {}
+        return [str(k) for k, v in probes.items() if not (_is_number(v) and math.isfinite(float(v)))]
+
 
 def _is_number(value) -> bool:
     return isinstance(value, (int, float)) and not isinstance(value, bool)
@@ -768,6 +773,10 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
                       + (f", {comp.below_floor_resamples} fell below the baseline's floor (ratio 0)" if comp.below_floor_resamples else "")
                       + ".")
         md += [f"- {note}" for note in notes]
+    rejected = [f"`{run.name}`: {name}" for run in runs if run.usable for name in run.rejected_probes()]
+    if rejected:
+        md += ["", f"{len(rejected)} probe value(s) were not finite numbers and were left out: "
+               + "; ".join(rejected[:10]) + ("; ..." if len(rejected) > 10 else "")]
     md += ["", "## Runs left out of the averages", ""]
     left = left_out_rows(runs)
     for folder in unfinished_folders(grid):

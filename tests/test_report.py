@@ -239,6 +239,16 @@ def test_plot_labels_drop_choices_all_cells_share():
     assert report.short_labels(["attention=standard"]) == ({"attention=standard": "attention=standard"}, [])
 
 
+def test_non_finite_probe_values_are_named_not_averaged(tmp_path):
+    _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={"x/acc": 0.5}))
+    _write_run(tmp_path / "b", _summary("standard", 1, final_val_loss=3.1, probes={"x/acc": float("nan")}))
+    assert report.main([str(tmp_path)]) == 0
+    with (tmp_path / "summary.csv").open() as handle:
+        row = _row(list(csv.DictReader(handle)), "attention=standard", "x/acc")
+    assert row["n"] == "1" and float(row["mean"]) == 0.5
+    assert "1 probe value(s) were not finite numbers and were left out: `b`: x/acc" in (tmp_path / "report.md").read_text()
+
+
 def test_stopped_run_listed_with_its_step(tmp_path):
     _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={}))
     _write_run(tmp_path / "b", {"status": "stopped", "attention": "standard", "seed": 1,

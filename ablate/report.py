@@ -11,7 +11,7 @@ and, for size or data sweeps, ``"sweep": {"axis": "params" | "tokens", "key": ..
 
 Writes into GRID_FOLDER: ``report.md``, ``summary.csv`` and ``plots/*.png``; prints the main
 table. Only completed runs with a finite final loss enter averages; failed and diverged runs are
-listed by folder. Exit code 0 on success, 2 (one line on stderr) on a missing folder, a folder
+listed by folder, as are run folders without summary.json. Exit code 0 on success, 2 (one line on stderr) on a missing folder, a folder
 without summary.json, or unreadable input.
 
 Comparisons are against a reference cell: the baseline, or, when grid.json declares a sweep,
@@ -24,7 +24,8 @@ summary.csv: one row per cell per metric.
     metric            ``final_val_loss``, a probe name from summary.json, or ``params_ratio`` /
                       ``tokens_ratio`` (efficiency estimate, see ablate.efficiency; cell is then
                       the attention choice)
-    n                 completed seeds with a finite value of the metric
+    n                 completed seeds with a finite value of the metric (ratio row: the fewest
+                      seeds in any swept cell)
     mean              mean over those seeds (for a ratio row: the fitted ratio)
     ci_low, ci_high   95% Student-t interval of the mean (empty when n = 1); for a ratio row the
                       bootstrap percentile interval

@@ -11,8 +11,8 @@ and, for size or data sweeps, ``"sweep": {"axis": "params" | "tokens", "key": ..
 
 Writes into GRID_FOLDER: ``report.md``, ``summary.csv`` and ``plots/*.png``; prints the main
 table. Only completed runs with a finite final loss enter averages; failed and diverged runs are
-listed by folder, as are run folders without summary.json. Exit code 0 on success, 2 (one line on stderr) on a missing folder, a folder
-without summary.json, or unreadable input.
+listed by folder, as are run folders without summary.json. Exit code 0 on success, 2 (one line
+on stderr) on a missing folder, a folder without summary.json, or unreadable input.
 
 Comparisons are against a reference cell: the baseline, or, when grid.json declares a sweep,
 the baseline's design at the same sweep point (same cell name with the baseline's other

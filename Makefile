@@ -19,8 +19,15 @@ $(STAMP): $(BIN)/python pyproject.toml
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
+RECIPE ?= quickstart
+
+# The quickstart grid, then its report; ends with the tensorboard command to view the curves.
 demo: $(STAMP)
-	$(BIN)/ablate-train -m recipe=quickstart
+	$(BIN)/ablate-corpus
+	$(BIN)/ablate-train -m recipe=$(RECIPE)
+	$(BIN)/ablate-report runs/$(RECIPE)
+	@echo ""
+	@echo "curves: $(BIN)/tensorboard --logdir runs/$(RECIPE)"
 
 clean:
 	rm -rf $(VENV) runs .pytest_cache

@@ -44,9 +44,15 @@ def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
     from .config import compose
 
     parser = OverridesParser.create()
-    parsed = parser.parse_overrides(overrides)
+    try:
+        parsed = parser.parse_overrides(overrides)
+    except Exception as exc:
+        raise ConfigError(one_line(exc)) from None
     first = [o.get_key_element() + "=" + (str(list(o.sweep_iterator())[0]) if o.is_sweep_override() else o.get_value_element_as_str()) if not o.is_delete() else o.input_line for o in parsed]
-    base = compose(first, return_hydra_config=True)
+    try:
+        base = compose(first, return_hydra_config=True)
+    except Exception as exc:
+        raise ConfigError(one_line(exc)) from None
     params = dict(base.hydra.sweeper.params or {})
     cli_keys = {o.get_key_element() for o in parsed}
     merged = list(overrides) + [f"{k}={v}" for k, v in params.items() if k not in cli_keys]
@@ -98,16 +104,34 @@ def validate_all(cfg) -> None:
     try:
         with torch.device("meta"):
             instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
-    except ValueError as exc:
-        raise ConfigError(f"attention: {one_line(exc)} (model.d_model={cfg.model.d_model})") from None
     except Exception as exc:
+        cause = exc.__cause__ or exc.__context__
+        if isinstance(exc, ValueError) or isinstance(cause, ValueError):
+            message = one_line(cause if isinstance(cause, ValueError) else exc)
+            if "d_model" in message:
+                message += f" (model.d_model={cfg.model.d_model}, attention.head_dim={cfg.attention.get('head_dim')})"
+            raise ConfigError(f"attention: {message}") from None
         raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {one_line(exc)}") from None
 
 
 def one_line(exc: BaseException) -> str:
     """Hydra's and OmegaConf's messages, squeezed to one readable line."""
+    import re
+
     text = str(exc).strip()
     lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
+    missing = re.match(r"In '.*': Could not find '([^/']+)/([^']+)'", lines[0]) if lines else None
+    if missing and any(ln.startswith("Available options") for ln in lines):
+        start = next(i for i, ln in enumerate(lines) if ln.startswith("Available options")) + 1
+        options = [ln for ln in lines[start:] if not ln.startswith(("Config search path", "provider="))]
+        return f"{missing.group(1)}={missing.group(2)}: unknown choice; allowed: {', '.join(options)}"
+    unknown = re.match(r"Could not override '([^']+)'", lines[0]) if lines else None
+    if unknown:
+        return f"{unknown.group(1)}: unknown key; check the spelling, or add a new key with +{unknown.group(1)}=<value>"
+    merging = re.match(r"Error merging override (.+)", lines[0]) if lines else None
+    if merging and exc.__cause__ is not None:
+        detail = str(exc.__cause__).splitlines()[0].strip()
+        return f"{merging.group(1)}: {detail}"
     keep = [ln for ln in lines if not ln.startswith(("Config search path", "provider=", "object_type=", "Set the environment"))]
     return " | ".join(keep[:3]) if keep else type(exc).__name__
 

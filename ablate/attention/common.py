@@ -15,6 +15,11 @@ def require_positive_int(name: str, value) -> None:
         raise ValueError(f"{name}={value!r} must be a positive integer")
 
 
+def require_bool(name: str, value) -> None:
+    if not isinstance(value, bool):
+        raise ValueError(f"{name}={value!r} must be true or false")
+
+
 def causal_mask(time: int, device=None) -> torch.Tensor:
     """Boolean ``[time, time]`` mask, True where a query may attend (key index <= query index)."""
     return torch.ones(time, time, dtype=torch.bool, device=device).tril()

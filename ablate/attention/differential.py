@@ -7,7 +7,7 @@ import math
 import torch
 from torch import nn
 
-from .common import causal_softmax, require_divisible, require_positive_int
+from .common import causal_softmax, require_bool, require_divisible, require_positive_int
 from .rotary import Rotary
 
 LAMBDA_MODES = ("learned", "fixed")
@@ -86,6 +86,7 @@ class DifferentialAttention(nn.Module):
     ):
         super().__init__()
         require_positive_int("head_dim", head_dim)
+        require_bool("head_norm", head_norm)
         require_divisible("d_model", d_model, 2 * head_dim, f"2 * head_dim = {2 * head_dim}")
         if lambda_mode not in LAMBDA_MODES:
             raise ValueError(f"lambda_mode={lambda_mode!r} must be one of {', '.join(LAMBDA_MODES)}")

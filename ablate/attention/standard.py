@@ -8,7 +8,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from .common import causal_softmax, require_divisible, require_positive_int
+from .common import causal_softmax, require_bool, require_divisible, require_positive_int
 from .rotary import Rotary
 
 
@@ -50,6 +50,7 @@ class StandardAttention(nn.Module):
     ):
         super().__init__()
         require_positive_int("head_dim", head_dim)
+        require_bool("head_norm", head_norm)
         require_divisible("d_model", d_model, head_dim, f"head_dim={head_dim}")
         self.d_model, self.head_dim = d_model, head_dim
         self.n_heads = d_model // head_dim

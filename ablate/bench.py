@@ -128,6 +128,7 @@ class Contender:
     grad_clip: float
     warmup_seconds: list[float] = field(default_factory=list)
     times: list[float] = field(default_factory=list)
+    cpu_times: list[float] = field(default_factory=list)
     losses: list[float] = field(default_factory=list)
     memory: dict = field(default_factory=dict)
     _next: int = 0
@@ -136,14 +137,15 @@ class Contender:
     def name(self) -> str:
         return self.attention if self.compile_mode == "none" else f"{self.attention}@{self.compile_mode}"
 
-    def step(self) -> float:
+    def step(self) -> tuple[float, float]:
+        """One training step; (wall seconds, process CPU seconds)."""
         batch = self.batches[self._next % len(self.batches)]
         self._next += 1
-        start = time.perf_counter()
+        cpu_start, start = time.process_time(), time.perf_counter()
         loss, _ = training_step(self.model, self.optimizer, batch, self.lr, self.grad_clip)
-        elapsed = time.perf_counter() - start
+        elapsed, cpu = time.perf_counter() - start, time.process_time() - cpu_start
         self.losses.append(float(loss))
-        return elapsed
+        return elapsed, cpu
 
 
 def build_contender(args, attention: str, compile_mode: str) -> Contender:
@@ -204,6 +206,7 @@ def summarise(contenders: list[Contender], probes: list[MatmulProbe], args, toke
             "median_step_seconds": median,
             "min_step_seconds": min(c.times),
             "step_spread": quartile_spread(c.times),
+            "median_cpu_seconds": statistics.median(c.cpu_times),
             "tokens_per_second": tokens_per_step / median,
             "flops_per_second": achieved,
             "share_of_peak": achieved / peak,
@@ -212,11 +215,15 @@ def summarise(contenders: list[Contender], probes: list[MatmulProbe], args, toke
             "final_loss": c.losses[-1],
             "memory": c.memory,
             "step_seconds": c.times,
+            "cpu_seconds": c.cpu_times,
         }
     for c in contenders:
         base = next((b for b in contenders if b.attention == "standard" and b.compile_mode == c.compile_mode), contenders[0])
         rows[c.name]["baseline"] = base.name
         rows[c.name]["step_ratio"] = rows[c.name]["median_step_seconds"] / rows[base.name]["median_step_seconds"]
+        # Paired: the ratio within each round, where both saw the same machine load; then the median.
+        rows[c.name]["paired_step_ratio"] = statistics.median(t / u for t, u in zip(c.times, base.times))
+        rows[c.name]["cpu_ratio"] = rows[c.name]["median_cpu_seconds"] / rows[base.name]["median_cpu_seconds"]
     return {
         "settings": {
             "model": args.model,
@@ -252,18 +259,24 @@ def format_table(result: dict) -> str:
         ),
         "",
     ]
-    header = f"{'design':<34}{'step ms':>9}{'spread':>8}{'ratio':>7}{'tok/s':>9}{'GFLOP/s':>9}{'of peak':>9}{'peak MiB':>10}"
+    header = (
+        f"{'design':<30}{'step ms':>9}{'spread':>8}{'ratio':>7}{'paired':>8}{'cpu ms':>8}{'cpu ratio':>10}"
+        f"{'tok/s':>8}{'GFLOP/s':>9}{'of peak':>9}{'peak MiB':>10}"
+    )
     lines += [header, "-" * len(header)]
     for name, r in result["designs"].items():
         lines.append(
-            f"{name:<34}{r['median_step_seconds'] * 1e3:>9.1f}{r['step_spread'] * 100:>7.0f}%{r['step_ratio']:>7.2f}"
-            f"{r['tokens_per_second']:>9.0f}{r['flops_per_second'] / 1e9:>9.1f}{r['share_of_peak'] * 100:>8.1f}%"
+            f"{name:<30}{r['median_step_seconds'] * 1e3:>9.1f}{r['step_spread'] * 100:>7.0f}%{r['step_ratio']:>7.2f}"
+            f"{r['paired_step_ratio']:>8.2f}{r['median_cpu_seconds'] * 1e3:>8.0f}{r['cpu_ratio']:>10.2f}"
+            f"{r['tokens_per_second']:>8.0f}{r['flops_per_second'] / 1e9:>9.1f}{r['share_of_peak'] * 100:>8.1f}%"
             f"{r['memory']['peak_rss_bytes'] / MIB:>10.0f}"
         )
     methods = {r["memory"]["method"] for r in result["designs"].values()}
     lines += [
         "",
-        "ratio: median step time over the same-compile 'standard' row; spread: interquartile range / median",
+        "ratio: median step time over the same-compile 'standard' row; paired: median over rounds of the",
+        "ratio within a round; cpu: process CPU time per step (all threads); spread: interquartile range / median",
+        "GFLOP/s and of peak: training FLOPs per token (ablate.compute.account) x tokens / median step time",
         f"peak MiB: whole-process peak RSS during one step ({'; '.join(sorted(methods))}); "
         f"process max RSS {result['process_max_rss_bytes'] / MIB:.0f} MiB",
     ]
@@ -322,7 +335,7 @@ def run(args) -> dict:
         probe.run(record=False)
     for c in contenders:
         for _ in range(args.warmup):
-            c.warmup_seconds.append(c.step())
+            c.warmup_seconds.append(c.step()[0])
     can_reset = _reset_peak_rss()
     if not can_reset:
         print("ablate-bench: /proc/self/clear_refs is not available; memory is the process-wide getrusage max RSS", file=sys.stderr)
@@ -330,7 +343,9 @@ def run(args) -> dict:
         c.memory = measure_memory(c, can_reset)
     for _ in range(args.steps):
         for c in contenders:
-            c.times.append(c.step())
+            wall, cpu = c.step()
+            c.times.append(wall)
+            c.cpu_times.append(cpu)
         for probe in probes:
             probe.run()
     for c in contenders:

@@ -45,9 +45,10 @@ def test_bench_writes_every_field_with_sane_values(tmp_path, capsys):
     assert sorted(designs) == sorted(NAMED_ATTENTION)  # default: every named choice
     for name, row in designs.items():
         assert name in printed
-        assert len(row["step_seconds"]) == 4
+        assert len(row["step_seconds"]) == len(row["cpu_seconds"]) == 4
         for key in ("median_step_seconds", "min_step_seconds", "tokens_per_second", "flops_per_second",
-                    "share_of_peak", "flops_per_token", "step_ratio", "final_loss"):
+                    "share_of_peak", "flops_per_token", "step_ratio", "paired_step_ratio",
+                    "median_cpu_seconds", "cpu_ratio", "final_loss"):
             assert _positive_finite(row[key]), (name, key, row[key])
         assert row["min_step_seconds"] <= row["median_step_seconds"]
         assert row["tokens_per_second"] == pytest.approx(64 / row["median_step_seconds"])
@@ -58,6 +59,7 @@ def test_bench_writes_every_field_with_sane_values(tmp_path, capsys):
         assert row["memory"]["peak_rss_bytes"] > 0
         assert len(row["warmup_seconds"]) == 1 and row["warmup_seconds"][0] > 0
     assert designs["standard"]["step_ratio"] == 1.0
+    assert designs["standard"]["paired_step_ratio"] == 1.0 and designs["standard"]["cpu_ratio"] == 1.0
     ratio = designs["differential"]["median_step_seconds"] / designs["standard"]["median_step_seconds"]
     assert designs["differential"]["step_ratio"] == pytest.approx(ratio)
     # Differential attention costs more per token (two value products per head).

@@ -16,28 +16,54 @@ import ablate
 
 CHECKPOINT = "checkpoint.pt"
 SUMMARY = "summary.json"
+TEMP_SUFFIX = ".partial"
 
 
 class CheckpointError(RuntimeError):
     """A checkpoint that must not be loaded (truncated, corrupt, or from another config)."""
 
 
+def _default_mode() -> int:
+    """Permission bits an ordinary new file gets under the current umask (mkstemp would leave
+    the file readable by its owner only)."""
+    umask = os.umask(0)
+    os.umask(umask)
+    return 0o666 & ~umask
+
+
 def atomic_write_bytes(path: Path, data: bytes) -> None:
     """Write to a temporary file in the same folder, then rename over ``path``: a kill at any
-    moment leaves either the old file or the new one, never half of one."""
+    moment leaves either the old file or the new one, never half of one (``os.replace`` is an
+    atomic rename on POSIX, Python docs). A kill can leave the temporary file behind;
+    :func:`remove_stale_temp_files` clears those."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=TEMP_SUFFIX)
     try:
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
+        os.chmod(tmp, _default_mode())
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
+    if os.name == "posix":  # make the rename itself durable (common practice)
+        dir_fd = os.open(path.parent, os.O_RDONLY)
+        try:
+            os.fsync(dir_fd)
+        finally:
+            os.close(dir_fd)
+
+
+def remove_stale_temp_files(folder: Path) -> list[Path]:
+    """Delete temporary files that a killed writer left in ``folder``; returns them."""
+    stale = [p for p in Path(folder).glob(f".*{TEMP_SUFFIX}") if p.is_file()]
+    for p in stale:
+        p.unlink()
+    return stale
 
 
 def write_json(path: Path, obj: dict) -> None:
@@ -67,38 +93,56 @@ def save_checkpoint(path: Path, state: dict) -> None:
 
 
 def load_checkpoint(path: Path, fingerprint: str) -> dict:
-    """Load with ``weights_only=True``; refuse a file that is damaged or from another config."""
+    """Load with ``weights_only=True`` (tensors and plain containers only, no pickled code:
+    torch.load docs); refuse a file that is damaged, truncated or from another config."""
     try:
         state = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as exc:  # torch raises several types for damaged files
+        reason = str(exc).strip().splitlines()[0][:120] if str(exc).strip() else type(exc).__name__
         raise CheckpointError(
-            f"checkpoint {path} cannot be read ({type(exc).__name__}); delete it to start the run afresh"
+            f"checkpoint {path} is damaged or truncated and was not loaded ({reason}); "
+            "delete it to start the run afresh"
         ) from None
-    if not isinstance(state, dict) or "fingerprint" not in state:
-        raise CheckpointError(f"checkpoint {path} is not an ablate checkpoint; delete it to start afresh")
+    if not isinstance(state, dict) or not {"fingerprint", "step", "model", "optimizer"} <= set(state):
+        raise CheckpointError(f"checkpoint {path} is not an ablate checkpoint and was not loaded; delete it to start afresh")
     if state["fingerprint"] != fingerprint:
         raise CheckpointError(
             f"checkpoint {path} was written by another config (fingerprint {state['fingerprint']}, "
-            f"this run {fingerprint}); use another run folder or delete it"
+            f"this run {fingerprint}) and was not loaded; use another run folder or delete it"
         )
     return state
 
 
-def git_commit() -> str | None:
+def _git(*args: str) -> str | None:
+    """Output of a git command in the checkout this package runs from; None outside a checkout
+    or without git."""
     root = Path(ablate.__file__).resolve().parents[1]
     if not (root / ".git").exists():
         return None
     try:
-        out = subprocess.run(["git", "-C", str(root), "rev-parse", "HEAD"], capture_output=True, text=True, timeout=5)
-        return out.stdout.strip() or None if out.returncode == 0 else None
+        out = subprocess.run(["git", "-C", str(root), *args], capture_output=True, text=True, timeout=10)
     except (OSError, subprocess.SubprocessError):
         return None
+    return out.stdout if out.returncode == 0 else None
+
+
+def git_commit() -> str | None:
+    out = _git("rev-parse", "HEAD")
+    return out.strip() or None if out is not None else None
+
+
+def git_dirty() -> bool | None:
+    """Whether the checkout differs from its commit: changed tracked files or untracked files
+    that are not ignored (so the commit alone would not rebuild this tree). None when unknown."""
+    out = _git("status", "--porcelain")
+    return bool(out.strip()) if out is not None else None
 
 
 def environment(device: str) -> dict:
     return {
         "ablate_version": ablate.__version__,
         "git_commit": git_commit(),
+        "git_dirty": git_dirty(),
         "torch_version": torch.__version__,
         "python_version": platform.python_version(),
         "threads": torch.get_num_threads(),

@@ -6,6 +6,7 @@ entry point read from Hydra (the config-group choices and the grid cell).
 
 from __future__ import annotations
 
+import contextlib
 import math
 import signal
 import time
@@ -99,19 +100,65 @@ def hparams_of(choices: dict, resolved: dict) -> dict:
     return values
 
 
-def _install_interrupt_handlers():
-    """Turn SIGTERM into KeyboardInterrupt so both stop the loop at a step boundary."""
-    def handler(signum, frame):
+class StopSignals:
+    """SIGINT (Ctrl-C) and SIGTERM handling for one run.
+
+    Outside the training loop either signal raises KeyboardInterrupt. Inside it
+    (``with stops.deferred():``) a signal is only noted: the loop finishes the step it is in,
+    writes a checkpoint and stops, so a checkpoint never holds a half-applied optimizer step
+    and a second signal during that save changes nothing.
+    """
+
+    SIGNALS = ("SIGINT", "SIGTERM")
+
+    def __init__(self):
+        self.received: str | None = None
+        self._deferring = False
+        self._previous = {}
+
+    def _handle(self, signum, frame):
+        if self._deferring:
+            self.received = self.received or signal.Signals(signum).name
+            return
         raise KeyboardInterrupt
 
-    try:
-        return signal.signal(signal.SIGTERM, handler)
-    except ValueError:  # not the main thread (e.g. some launchers): leave signals alone
-        return None
+    def __enter__(self):
+        for name in self.SIGNALS:
+            sig = getattr(signal, name)
+            try:
+                self._previous[sig] = signal.signal(sig, self._handle)
+            except ValueError:  # not the main thread (some launchers): signals stay as they were
+                self._previous.clear()
+                break
+        return self
+
+    def __exit__(self, *exc):
+        for sig, previous in self._previous.items():
+            signal.signal(sig, previous)
+        self._previous.clear()
+        return False
+
+    @contextlib.contextmanager
+    def deferred(self):
+        self._deferring = True
+        try:
+            yield
+        finally:
+            self._deferring = False
 
 
 def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> dict:
-    """Train one run to its budget (resuming if a checkpoint exists). Returns the summary."""
+    """Train one run to its budget (resuming if a checkpoint exists). Returns the summary.
+
+    Raises :class:`Interrupted` after writing a checkpoint when SIGINT or SIGTERM arrives during
+    training, and ``records.CheckpointError`` (before touching the run folder) when the folder's
+    checkpoint is damaged or belongs to another config.
+    """
+    with StopSignals() as stops:
+        return _run(cfg, info, parallel_jobs, stops)
+
+
+def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> dict:
     import toy_corpus
     from torch.utils.tensorboard import SummaryWriter
     from torch.utils.tensorboard.summary import hparams
@@ -120,13 +167,17 @@ def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> dict:
 
     started = time.time()
     resolved = OmegaConf.to_container(cfg, resolve=True)
+    device = resolve_device(resolved["runtime"]["device"])
     run_dir = info.run_dir
     run_dir.mkdir(parents=True, exist_ok=True)
     fingerprint = records.config_fingerprint(resolved)
-    (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
+    ckpt_path = run_dir / records.CHECKPOINT
+    records.remove_stale_temp_files(run_dir)
+    # Read (and refuse) an existing checkpoint before anything in the folder is rewritten.
+    state = records.load_checkpoint(ckpt_path, fingerprint) if ckpt_path.exists() else None
+    records.atomic_write_bytes(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
 
     set_threads(resolved["runtime"], parallel_jobs)
-    device = resolve_device(resolved["runtime"]["device"])
     seq_len, batch_size = cfg.model.seq_len, cfg.budget.batch_size
 
     corpus = toy_corpus.get_corpus(resolved["data"], seq_len, resolved["runtime"]["cache_dir"])
@@ -144,133 +195,148 @@ def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> dict:
 
     step = 0
     last_val = None
-    ckpt_path = run_dir / records.CHECKPOINT
-    if ckpt_path.exists():
-        state = records.load_checkpoint(ckpt_path, fingerprint)
-        model.load_state_dict(state["model"])
-        optimizer.load_state_dict(state["optimizer"])
-        step, last_val = int(state["step"]), state.get("last_val")
+    last_finite = None
+    if state is not None:
+        try:
+            model.load_state_dict(state["model"])
+            optimizer.load_state_dict(state["optimizer"])
+        except (KeyError, ValueError, RuntimeError) as exc:
+            raise records.CheckpointError(
+                f"checkpoint {ckpt_path} does not fit this model ({type(exc).__name__}: {str(exc).splitlines()[0][:160]}); "
+                "delete it to start the run afresh"
+            ) from None
+        step, last_val, last_finite = int(state["step"]), state.get("last_val"), state.get("last_train")
         print(f"resuming {run_dir.name} from step {step} ({step * tokens_per_step:,} tokens)", flush=True)
+        del state
 
     train_model = torch.compile(model) if cfg.runtime.compile else model
     batches = toy_corpus.WindowBatches(corpus.train_ids, seq_len, batch_size, cfg.seed)
     val = torch.from_numpy(toy_corpus.validation_windows(corpus.val_ids, seq_len, cfg.budget.eval_windows)).to(device)
-    # purge_step: TensorBoard drops anything an interrupted earlier attempt logged at or after
-    # the resume point, so the curve has no duplicated steps.
-    writer = SummaryWriter(log_dir=str(run_dir), purge_step=step * tokens_per_step if step else None)
-    if step == 0:
-        exp, ssi, sei = hparams(hparams_of(info.choices, resolved), {"final/val_loss": 0.0, "final/train_loss": 0.0})
-        for s in (exp, ssi, sei):
-            writer.file_writer.add_summary(s)
-        writer.add_text("config", "```\n" + OmegaConf.to_yaml(cfg, resolve=True) + "\n```", 0)
+    # Everything up to the checkpoint's step was flushed before the checkpoint was written, so
+    # on resume TensorBoard is told to drop only what an earlier attempt logged after it
+    # (purge_step: events at or after it are hidden), and the curve has no duplicated steps.
+    # The writer is closed (flushed) on every way out: the event files of a diverged, failed or
+    # interrupted run are kept whole.
+    with SummaryWriter(log_dir=str(run_dir), purge_step=step * tokens_per_step + 1 if step else None) as writer:
+        if step == 0:
+            exp, ssi, sei = hparams(hparams_of(info.choices, resolved), {"final/val_loss": 0.0, "final/train_loss": 0.0})
+            for s in (exp, ssi, sei):
+                writer.file_writer.add_summary(s)
+            writer.add_text("config", "```\n" + OmegaConf.to_yaml(cfg, resolve=True) + "\n```", 0)
 
-    eval_every = max(1, round(cfg.budget.eval_every_tokens / tokens_per_step))
-    ckpt_every = max(1, round(cfg.budget.checkpoint_every_tokens / tokens_per_step))
-    log_every = cfg.budget.log_every_steps
-    stop_after = cfg.runtime.stop_after_steps
-    summary = {
-        "status": "running",
-        "attention": info.choices.get("attention"),
-        "choices": info.choices,
-        "cell": info.cell,
-        "overrides": info.overrides,
-        "seed": cfg.seed,
-        "params": acc.params,
-        "non_embedding_params": acc.non_embedding_params,
-        "flops_per_token": acc.flops_per_token,
-        "budget_match": cfg.budget.match,
-        "total_steps": total_steps,
-        "tokens_per_step": tokens_per_step,
-        "fingerprint": fingerprint,
-        "environment": records.environment(str(device)),
-        "probes": {},
-    }
+        eval_every = max(1, round(cfg.budget.eval_every_tokens / tokens_per_step))
+        ckpt_every = max(1, round(cfg.budget.checkpoint_every_tokens / tokens_per_step))
+        log_every = cfg.budget.log_every_steps
+        stop_after = cfg.runtime.stop_after_steps
+        summary = {
+            "status": "running",
+            "attention": info.choices.get("attention"),
+            "choices": info.choices,
+            "cell": info.cell,
+            "overrides": info.overrides,
+            "seed": cfg.seed,
+            "params": acc.params,
+            "non_embedding_params": acc.non_embedding_params,
+            "flops_per_token": acc.flops_per_token,
+            "budget_match": cfg.budget.match,
+            "total_steps": total_steps,
+            "tokens_per_step": tokens_per_step,
+            "fingerprint": fingerprint,
+            "environment": records.environment(str(device)),
+            "probes": {},
+        }
 
-    def save(at_step: int):
-        records.save_checkpoint(ckpt_path, {
-            "fingerprint": fingerprint, "step": at_step, "last_val": last_val,
-            "model": model.state_dict(), "optimizer": optimizer.state_dict(),
-        })
+        def save(at_step: int):
+            writer.flush()  # events up to at_step reach the disk before the checkpoint that vouches for them
+            records.save_checkpoint(ckpt_path, {
+                "fingerprint": fingerprint, "step": at_step, "last_val": last_val, "last_train": last_finite,
+                "model": model.state_dict(), "optimizer": optimizer.state_dict(),
+            })
 
-    from tqdm import tqdm
+        from tqdm import tqdm
 
-    bar = tqdm(
-        total=total_steps * tokens_per_step, initial=step * tokens_per_step, unit="tok", unit_scale=True,
-        desc=info.cell or run_dir.name, disable=not cfg.runtime.progress, dynamic_ncols=True, leave=False,
-    )
-    previous_handler = _install_interrupt_handlers()
-    last_finite = None
-    t_window, tokens_window = time.perf_counter(), 0
-    status = "completed"
-    try:
-        while step < total_steps:
-            batch = torch.from_numpy(batches.get(step)).to(device)
-            lr = lr_at(step, total_steps, cfg.optim.lr, warmup, cfg.optim.min_lr_ratio)
-            loss, grad_norm = training_step(train_model, optimizer, batch, lr, cfg.optim.grad_clip)
-            step += 1
-            tokens = step * tokens_per_step
-            loss_value = loss.item()
-            if not (math.isfinite(loss_value) and math.isfinite(grad_norm.item())):
-                status = "diverged"
-                summary.update(diverged_at_step=step, diverged_at_tokens=tokens, last_finite_loss=last_finite)
-                writer.add_scalar("loss/train", loss_value, tokens)
-                break
-            last_finite = loss_value
-            tokens_window += tokens_per_step
-            bar.update(tokens_per_step)
-            if step % log_every == 0 or step == total_steps:
-                elapsed = time.perf_counter() - t_window
-                speed = tokens_window / elapsed if elapsed > 0 else float("nan")
-                writer.add_scalar("loss/train", loss_value, tokens)
-                writer.add_scalar("optim/lr", lr, tokens)
-                writer.add_scalar("optim/grad_norm", grad_norm.item(), tokens)
-                writer.add_scalar("speed/tokens_per_second", speed, tokens)
-                writer.add_scalar("compute/train_flops", tokens * acc.flops_per_token, tokens)
-                for tag, value in lambda_values(model).items():
-                    writer.add_scalar(tag, value, tokens)
-                bar.set_postfix(loss=f"{loss_value:.3f}", tok_s=f"{speed:,.0f}")
-                t_window, tokens_window = time.perf_counter(), 0
-            if step % eval_every == 0 or step == total_steps:
-                last_val = evaluate(model, val, batch_size)
-                writer.add_scalar("loss/val", last_val, tokens)
-            if step % ckpt_every == 0 or step == total_steps:
-                save(step)
-                writer.flush()
-            if stop_after is not None and step >= stop_after and step < total_steps:
-                save(step)
-                status = "stopped"
-                break
-    except KeyboardInterrupt:
-        save(step)
-        writer.close()
-        bar.close()
-        raise Interrupted(
-            f"interrupted at step {step} ({step * tokens_per_step:,} tokens); checkpoint saved in {run_dir}. "
-            "Run the same command again to resume."
-        ) from None
-    finally:
-        if previous_handler is not None:
-            signal.signal(signal.SIGTERM, previous_handler)
-        bar.close()
+        bar = tqdm(
+            total=total_steps * tokens_per_step, initial=step * tokens_per_step, unit="tok", unit_scale=True,
+            desc=info.cell or run_dir.name, disable=not cfg.runtime.progress, dynamic_ncols=True, leave=False,
+        )
+        t_window, tokens_window = time.perf_counter(), 0
+        status = "completed"
+        try:
+            with stops.deferred():
+                while step < total_steps:
+                    batch = torch.from_numpy(batches.get(step)).to(device)
+                    lr = lr_at(step, total_steps, cfg.optim.lr, warmup, cfg.optim.min_lr_ratio)
+                    loss, grad_norm = training_step(train_model, optimizer, batch, lr, cfg.optim.grad_clip)
+                    step += 1
+                    tokens = step * tokens_per_step
+                    loss_value, grad_value = loss.item(), grad_norm.item()
+                    if not (math.isfinite(loss_value) and math.isfinite(grad_value)):
+                        # training_step skipped the optimizer step on a non-finite gradient; nothing
+                        # of this step is saved: the last checkpoint stays the last finite state.
+                        status = "diverged"
+                        summary.update(
+                            diverged_at_step=step, diverged_at_tokens=tokens, last_finite_loss=last_finite,
+                            diverged_on="loss" if not math.isfinite(loss_value) else "gradient",
+                            diverged_loss=loss_value if math.isfinite(loss_value) else str(loss_value),
+                            diverged_grad_norm=grad_value if math.isfinite(grad_value) else str(grad_value),
+                        )
+                        writer.add_scalar("loss/train", loss_value, tokens)
+                        writer.add_scalar("optim/grad_norm", grad_value, tokens)
+                        break
+                    last_finite = loss_value
+                    tokens_window += tokens_per_step
+                    bar.update(tokens_per_step)
+                    if step % log_every == 0 or step == total_steps:
+                        elapsed = time.perf_counter() - t_window
+                        speed = tokens_window / elapsed if elapsed > 0 else float("nan")
+                        writer.add_scalar("loss/train", loss_value, tokens)
+                        writer.add_scalar("optim/lr", lr, tokens)
+                        writer.add_scalar("optim/grad_norm", grad_value, tokens)
+                        writer.add_scalar("speed/tokens_per_second", speed, tokens)
+                        writer.add_scalar("compute/train_flops", tokens * acc.flops_per_token, tokens)
+                        for tag, value in lambda_values(model).items():
+                            writer.add_scalar(tag, value, tokens)
+                        bar.set_postfix(loss=f"{loss_value:.3f}", tok_s=f"{speed:,.0f}")
+                        t_window, tokens_window = time.perf_counter(), 0
+                    if step % eval_every == 0 or step == total_steps:
+                        last_val = evaluate(model, val, batch_size)
+                        writer.add_scalar("loss/val", last_val, tokens)
+                    saved = step % ckpt_every == 0 or step == total_steps
+                    if saved:
+                        save(step)
+                    if stops.received is not None:
+                        if not saved:
+                            save(step)
+                        raise Interrupted(
+                            f"stopped by {stops.received} at step {step} of {total_steps} ({step * tokens_per_step:,} tokens); "
+                            f"checkpoint saved in {run_dir}. Run the same command again to resume."
+                        )
+                    if stop_after is not None and step >= stop_after and step < total_steps:
+                        if not saved:
+                            save(step)
+                        status = "stopped"
+                        break
+        finally:
+            bar.close()
 
-    tokens = step * tokens_per_step
-    summary.update(
-        status=status,
-        step=step,
-        tokens=tokens,
-        train_flops=tokens * acc.flops_per_token,
-        final_train_loss=last_finite,
-        final_val_loss=last_val,
-    )
-    if status == "completed":
-        summary["probes"] = run_probes(model, corpus, resolved.get("probes"), device, writer, run_dir, tokens)
-        writer.add_scalar("final/val_loss", last_val, tokens)
-        writer.add_scalar("final/train_loss", last_finite, tokens)
-    writer.close()
-    summary["wall_seconds"] = time.time() - started
-    if status != "stopped":
-        records.write_json(run_dir / records.SUMMARY, summary)
-    return summary
+        tokens = step * tokens_per_step
+        summary.update(
+            status=status,
+            step=step,
+            tokens=tokens,
+            train_flops=tokens * acc.flops_per_token,
+            final_train_loss=last_finite,
+            final_val_loss=last_val,
+        )
+        if status == "completed":
+            summary["probes"] = run_probes(model, corpus, resolved.get("probes"), device, writer, run_dir, tokens)
+            writer.add_scalar("final/val_loss", last_val, tokens)
+            writer.add_scalar("final/train_loss", last_finite, tokens)
+        writer.flush()
+        summary["wall_seconds"] = time.time() - started
+        if status != "stopped":
+            records.write_json(run_dir / records.SUMMARY, summary)
+        return summary
 
 
 def run_probes(model, corpus, probes_cfg, device, writer, run_dir: Path, tokens: int) -> dict:

@@ -87,8 +87,11 @@ def _task_impl(cfg) -> dict | None:
 
     fingerprint = records.config_fingerprint(OmegaConf.to_container(cfg, resolve=True))
     done = records.read_json(run_dir / records.SUMMARY)
-    if done and done.get("status") == "completed" and done.get("fingerprint") == fingerprint:
-        print(f"skip {run_dir.name}: already completed with the same config", flush=True)
+    if done and done.get("status") in ("completed", "diverged") and done.get("fingerprint") == fingerprint:
+        # the same config and seed give the same numbers, so running it again would repeat them
+        print(f"skip {run_dir.name}: already {done['status']} with the same config", flush=True)
+        if done["status"] == "diverged" and not in_grid:
+            sys.exit(1)
         return done
     try:
         validate_all(cfg)
@@ -96,8 +99,14 @@ def _task_impl(cfg) -> dict | None:
     except Interrupted as exc:
         print(f"ablate-train: {exc}", file=sys.stderr, flush=True)
         sys.exit(130)
+    except KeyboardInterrupt:  # Ctrl-C or SIGTERM outside the training loop (corpus build, probes)
+        print(f"ablate-train: interrupted outside the training loop; {run_dir} keeps its last complete "
+              "checkpoint, if any. Run the same command again to resume.", file=sys.stderr, flush=True)
+        sys.exit(130)
     except (ConfigError, records.CheckpointError) as exc:
         if not in_grid:
+            with open(run_dir / "train.log", "a") as log:  # the folder keeps the reason
+                log.write(f"error: {exc}\n")
             print(f"ablate-train: error: {exc}", file=sys.stderr, flush=True)
             sys.exit(EXIT_CONFIG)
         return _record_failure(run_dir, info, cfg, exc)

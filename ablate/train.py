@@ -26,8 +26,12 @@ EXIT_CONFIG = 2
 
 def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
     multirun = any(a in ("-m", "--multirun") for a in argv)
-    design = [a for a in argv if not a.startswith("-") and not a.lstrip("+~").startswith("hydra")]
-    hydra_side = [a for a in argv if not a.startswith("-") and a.lstrip("+~").startswith("hydra")]
+    def hydra_only(a: str) -> bool:  # launcher and output settings; the search path shapes the config
+        key = a.lstrip("+~")
+        return key.startswith("hydra") and not key.startswith("hydra.searchpath")
+
+    design = [a for a in argv if not a.startswith("-") and not hydra_only(a)]
+    hydra_side = [a for a in argv if not a.startswith("-") and hydra_only(a)]
     return multirun, design, hydra_side
 
 
@@ -51,7 +55,7 @@ def preflight(argv: list[str]) -> dict | None:
     sweep_dir = Path(OmegaConf.to_container(base, resolve=False)["hydra"]["sweep"]["dir"]
                      .replace("${run_root}", str(base.run_root)).replace("${grid.name}", str(grid.name)))
     return {
-        "recipe": base.recipe if isinstance(base.recipe, str) else (grid.name if base.recipe is not None else None),
+        "recipe": base.hydra.runtime.choices.get("recipe"),
         "name": str(grid.name),
         "baseline": baseline,
         "varied": [v for v in varied if v != "seed"],
@@ -188,7 +192,9 @@ def main(argv: list[str] | None = None) -> None:
             print(format_table(grid["fairness"]), flush=True)
     else:
         grid = None
-    sys.argv = [sys.argv[0]] + argv
+    # Hydra's parser wants -m before the overrides; accept it anywhere.
+    multirun_flags = [a for a in argv if a in ("-m", "--multirun")]
+    sys.argv = [sys.argv[0]] + multirun_flags + [a for a in argv if a not in multirun_flags]
     _hydra_app()()
     if grid is not None:
         _grid_epilogue(Path(grid["dir"]))

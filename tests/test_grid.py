@@ -1,0 +1,89 @@
+"""Grids: the fairness gate, an A/A grid, a smoke grid through ablate-train -m and the report,
+and relaunching a finished grid."""
+
+import csv
+import math
+import subprocess
+import sys
+
+import pytest
+
+from ablate.schema import ConfigError
+from ablate.train import preflight
+from trainer_helpers import ROOT, SMALL_DATA, run_dirs, summary, train
+
+SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA]
+
+
+def test_fairness_gate_stops_a_grid_whose_cells_differ():
+    with pytest.raises(ConfigError) as err:
+        preflight(["-m", "recipe=quickstart", "model.d_model=128,192", "attention=standard",
+                   "grid.baseline='model.d_model=128'"])
+    message = str(err.value)
+    assert "grid.tolerance=0.02" in message and "model.d_model=192" in message
+    assert "params" in message.splitlines()[1]  # the table follows the one-line verdict
+
+
+def test_fairness_gate_lets_a_declared_unequal_axis_through():
+    grid = preflight(["-m", "recipe=quickstart", "model.d_model=128,192", "attention=standard",
+                      "grid.unequal_axes=[model.d_model]", "grid.baseline='model.d_model=128'"])
+    ratios = {row["cell"]: row["params_ratio"] for row in grid["fairness"]}
+    assert len(ratios) == 2 and max(ratios.values()) > 1.5
+
+
+def test_differential_and_standard_pass_the_gate_with_their_table():
+    grid = preflight(["-m", "recipe=quickstart"])
+    rows = {row["cell"]: row for row in grid["fairness"]}
+    assert grid["baseline"] == "attention=standard" and grid["jobs"] == 4
+    assert abs(rows["attention=differential"]["params_ratio"] - 1) < 0.02
+    assert rows["attention=differential"]["flops_ratio"] > 1.0
+
+
+def report(grid_dir):
+    return subprocess.run([sys.executable, "-m", "ablate.report", str(grid_dir)], capture_output=True, text=True,
+                          cwd=ROOT, timeout=300)
+
+
+@pytest.fixture(scope="module")
+def cache(tmp_path_factory):
+    return tmp_path_factory.mktemp("grid-cache")
+
+
+def test_smoke_grid_report_and_relaunch(tmp_path, cache):
+    proc = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert "ablate-report" in proc.stdout and "tensorboard --logdir" in proc.stdout
+    grid_dir = tmp_path / "quickstart"
+    runs = run_dirs(grid_dir)
+    assert len(runs) == 4 and all(summary(r)["status"] == "completed" for r in runs)
+    out = report(grid_dir)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert (grid_dir / "report.md").exists() and list((grid_dir / "plots").glob("*.png"))
+    rows = list(csv.DictReader((grid_dir / "summary.csv").open()))
+    cells = {r["cell"] for r in rows}
+    assert any("differential" in c for c in cells) and any("standard" in c for c in cells)
+    # relaunching the finished grid trains nothing
+    again = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
+    assert again.returncode == 0
+    assert again.stdout.count("skip") == 4 and "done " not in again.stdout
+
+
+def test_a_a_grid_reports_a_difference_whose_interval_covers_zero(tmp_path, cache):
+    # The same block under two names (a copy of standard.yaml), 3 seeds: paired by seed the
+    # runs are identical, so the difference must be exactly 0 and its interval must cover 0.
+    conf = tmp_path / "extra" / "attention"
+    conf.mkdir(parents=True)
+    conf.joinpath("standard_copy.yaml").write_text((ROOT / "conf/attention/standard.yaml").read_text())
+    proc = train(["-m", "recipe=quickstart", *SMOKE, "attention=standard,standard_copy", "seed=0,1,2",
+                  f"hydra.searchpath=[file://{tmp_path / 'extra'}]"], tmp_path / "runs", cache)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    grid_dir = tmp_path / "runs" / "quickstart"
+    out = report(grid_dir)
+    assert out.returncode == 0, out.stderr[-2000:]
+    rows = [r for r in csv.DictReader((grid_dir / "summary.csv").open())
+            if "standard_copy" in r["cell"] and r["metric"] == "final_val_loss"]
+    assert len(rows) == 1
+    row = rows[0]
+    assert int(row["n"]) == 3
+    low, high = float(row["diff_ci_low"]), float(row["diff_ci_high"])
+    assert float(row["diff_to_baseline"]) == 0.0 and low <= 0.0 <= high

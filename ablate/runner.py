@@ -147,6 +147,31 @@ class StopSignals:
             self._deferring = False
 
 
+def data_windows(corpus, seq_len: int, batch_size: int, seed: int, eval_windows: int):
+    """Training batches and validation windows. What the corpus cannot serve (a window longer
+    than its documents allow, more validation windows than it has) is only known once the text
+    is tokenized; it is a ConfigError naming the key, raised before anything trains."""
+    import toy_corpus
+
+    split, key, value = "training", "model.seq_len", seq_len
+    try:
+        batches = toy_corpus.WindowBatches(corpus.train_ids, seq_len, batch_size, seed)
+        split = "validation"
+        val = toy_corpus.validation_windows(corpus.val_ids, seq_len, eval_windows)
+    except ValueError as exc:
+        from .schema import ConfigError
+
+        message = str(exc).splitlines()[0]
+        if message.startswith("ids:"):
+            raise ConfigError(f"{key}={value}: longer than the {split} text allows ({message.removeprefix('ids: ')}); "
+                              "allowed: a shorter model.seq_len, or more data (data.n_documents)") from None
+        if message.startswith("n_windows="):
+            raise ConfigError(f"budget.eval_windows={eval_windows}: {message.split(': ', 1)[1]}; "
+                              "allowed: fewer windows, or more data (data.n_documents)") from None
+        raise ConfigError(message) from None
+    return batches, val
+
+
 def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> dict:
     """Train one run to its budget (resuming if a checkpoint exists). Returns the summary.
 
@@ -175,12 +200,13 @@ def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> d
     records.remove_stale_temp_files(run_dir)
     # Read (and refuse) an existing checkpoint before anything in the folder is rewritten.
     state = records.load_checkpoint(ckpt_path, fingerprint) if ckpt_path.exists() else None
-    records.atomic_write_bytes(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
 
     set_threads(resolved["runtime"], parallel_jobs)
     seq_len, batch_size = cfg.model.seq_len, cfg.budget.batch_size
 
     corpus = toy_corpus.get_corpus(resolved["data"], seq_len, resolved["runtime"]["cache_dir"])
+    batches, val_windows = data_windows(corpus, seq_len, batch_size, cfg.seed, cfg.budget.eval_windows)
+    records.atomic_write_bytes(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
     torch.manual_seed(cfg.seed)
     model = build_model(cfg, corpus.vocab_size)
     acc = account(model)
@@ -210,8 +236,7 @@ def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> d
         del state
 
     train_model = torch.compile(model) if cfg.runtime.compile else model
-    batches = toy_corpus.WindowBatches(corpus.train_ids, seq_len, batch_size, cfg.seed)
-    val = torch.from_numpy(toy_corpus.validation_windows(corpus.val_ids, seq_len, cfg.budget.eval_windows)).to(device)
+    val = torch.from_numpy(val_windows).to(device)
     # Everything up to the checkpoint's step was flushed before the checkpoint was written, so
     # on resume TensorBoard is told to drop only what an earlier attempt logged after it
     # (purge_step: events at or after it are hidden), and the curve has no duplicated steps.

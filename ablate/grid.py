@@ -189,11 +189,12 @@ def check_fairness(cells: list[Cell], baseline: str, tolerance: float, unequal_a
 
 
 def format_table(rows: list[dict]) -> str:
-    header = f"{'cell':<44} {'params':>10} {'vs base':>8} {'FLOPs/token':>12} {'vs base':>8}"
+    width = max(len("cell"), *(len(r["cell"]) for r in rows))
+    header = f"{'cell':<{width}} {'params':>10} {'vs base':>8} {'FLOPs/token':>12} {'vs base':>8}"
     lines = [header, "-" * len(header)]
     for r in rows:
         lines.append(
-            f"{r['cell'][:44]:<44} {r['params']:>10,} {(r['params_ratio'] - 1) * 100:>+7.1f}% "
+            f"{r['cell']:<{width}} {r['params']:>10,} {(r['params_ratio'] - 1) * 100:>+7.1f}% "
             f"{r['flops_per_token']:>12.3e} {(r['flops_ratio'] - 1) * 100:>+7.1f}%"
         )
     return "\n".join(lines)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import pickle
 import platform
 import subprocess
 import tempfile
@@ -92,13 +93,26 @@ def save_checkpoint(path: Path, state: dict) -> None:
     atomic_write_bytes(path, buffer.getvalue())
 
 
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0][:120] if text else type(exc).__name__
+
+
 def load_checkpoint(path: Path, fingerprint: str) -> dict:
     """Load with ``weights_only=True`` (tensors and plain containers only, no pickled code:
     torch.load docs); refuse a file that is damaged, truncated or from another config."""
     try:
         state = torch.load(path, map_location="cpu", weights_only=True)
+    except pickle.UnpicklingError as exc:
+        if "weights only" not in str(exc).lower():
+            raise CheckpointError(f"checkpoint {path} is damaged or truncated and was not loaded ({_first_line(exc)}); "
+                                  "delete it to start the run afresh") from None
+        raise CheckpointError(
+            f"checkpoint {path} holds objects other than tensors and plain containers, which "
+            "torch.load(weights_only=True) refuses, so it was not loaded; delete it to start the run afresh"
+        ) from None
     except Exception as exc:  # torch raises several types for damaged files
-        reason = str(exc).strip().splitlines()[0][:120] if str(exc).strip() else type(exc).__name__
+        reason = _first_line(exc)
         raise CheckpointError(
             f"checkpoint {path} is damaged or truncated and was not loaded ({reason}); "
             "delete it to start the run afresh"

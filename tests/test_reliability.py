@@ -1,0 +1,352 @@
+"""Faults a run must survive: divergence, kills, Ctrl-C/SIGTERM, bad checkpoints, bad inputs.
+
+Every end-to-end test runs the real ``ablate-train`` in a subprocess at the smoke budget on the
+small test corpus, with one torch thread (two threads on two shared cores run several times
+slower) and a checkpoint every 2 steps so a signal always lands between checkpoints.
+"""
+
+import math
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import torch
+
+from trainer_helpers import ROOT, SMALL_DATA, run_dirs, scalars, summary, train
+
+SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA, "runtime.threads=1"]
+RESUMABLE = [*SMOKE, "budget.checkpoint_every_tokens=2048"]  # 16 steps of 1024 tokens, a checkpoint every 2
+DIVERGING_LR = "1e3"  # AdamW at this lr gives a non-finite loss at step 2 of the smoke run (seen, not assumed)
+
+
+@pytest.fixture(scope="module")
+def cache(tmp_path_factory):
+    return tmp_path_factory.mktemp("corpus-cache")
+
+
+def start_train(args, run_root, cache):
+    """``ablate-train`` in the background, as trainer_helpers.train runs it."""
+    env = dict(os.environ, ABLATE_CACHE=str(cache), PYTHONHASHSEED="0")
+    cmd = [sys.executable, "-m", "ablate.train", f"run_root={run_root}", "runtime.progress=false", *args]
+    return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=ROOT)
+
+
+def file_version(path):
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        return None
+    return (st.st_ino, st.st_mtime_ns, st.st_size)
+
+
+def wait_for_new_checkpoint(proc, run_root, before=None, timeout=120):
+    """Poll until the run writes a checkpoint other than ``before``; return its path."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        for path in Path(run_root).rglob("checkpoint.pt"):
+            version = file_version(path)
+            if version is not None and version != before:
+                return path
+        if proc.poll() is not None:
+            out, err = proc.communicate()
+            pytest.fail(f"run ended (exit {proc.returncode}) before a new checkpoint appeared:\n{err[-2000:]}")
+        time.sleep(0.02)
+    proc.kill()
+    pytest.fail("no new checkpoint within the timeout")
+
+
+def checkpoint_step(path):
+    # torch.load weights_only=True: tensors and plain containers only (torch.load docs)
+    return int(torch.load(path, map_location="cpu", weights_only=True)["step"])
+
+
+def error_lines(proc):
+    return [ln for ln in proc.stderr.strip().splitlines() if ln.strip()]
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory, cache):
+    """An uninterrupted run of the resumable config."""
+    root = tmp_path_factory.mktemp("reference")
+    proc = train(RESUMABLE, root, cache)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    (run_dir,) = run_dirs(root)
+    return run_dir
+
+
+@pytest.fixture(scope="module")
+def interrupted(tmp_path_factory, cache):
+    """One run taken through SIGKILL, then SIGINT, then SIGTERM, then run to its end; each
+    stage is the same command again. Returns what each stage left behind."""
+    root = tmp_path_factory.mktemp("interrupted")
+    stages = {}
+    before = None
+    for name, sig in (("kill", signal.SIGKILL), ("int", signal.SIGINT), ("term", signal.SIGTERM)):
+        proc = start_train(RESUMABLE, root, cache)
+        ckpt = wait_for_new_checkpoint(proc, root, before)
+        proc.send_signal(sig)
+        out, err = proc.communicate(timeout=120)
+        before = file_version(ckpt)
+        stages[name] = {
+            "rc": proc.returncode, "stdout": out, "stderr": err, "run_dir": ckpt.parent, "step": checkpoint_step(ckpt),
+            "summary": (ckpt.parent / "summary.json").exists(),
+            "temp_files": sorted(p.name for p in ckpt.parent.glob(".*")),
+        }
+    final = train(RESUMABLE, root, cache)
+    stages["final"] = {"rc": final.returncode, "stdout": final.stdout, "stderr": final.stderr}
+    return stages
+
+
+def test_sigkill_leaves_a_loadable_checkpoint_and_no_summary(interrupted):
+    kill = interrupted["kill"]
+    assert kill["rc"] == -signal.SIGKILL
+    assert kill["step"] >= 2 and kill["step"] % 2 == 0  # one of the every-2-steps checkpoints, read whole
+    assert not kill["summary"]
+
+
+def test_sigint_stops_with_exit_130_a_fresh_checkpoint_and_a_resume_hint(interrupted):
+    stage = interrupted["int"]
+    assert stage["rc"] == 130, stage["stderr"][-2000:]
+    assert f"resuming {stage['run_dir'].name} from step {interrupted['kill']['step']}" in stage["stdout"]
+    lines = [ln for ln in stage["stderr"].splitlines() if ln.strip()]
+    assert len(lines) == 1 and "Traceback" not in stage["stderr"], stage["stderr"]
+    assert "SIGINT" in lines[0] and "Run the same command again to resume" in lines[0]
+    assert f"at step {stage['step']} " in lines[0]  # the step it names is the step the checkpoint holds
+    assert stage["step"] > interrupted["kill"]["step"] and not stage["summary"]
+
+
+def test_sigterm_stops_like_sigint(interrupted):
+    stage = interrupted["term"]
+    assert stage["rc"] == 130, stage["stderr"][-2000:]
+    lines = [ln for ln in stage["stderr"].splitlines() if ln.strip()]
+    assert len(lines) == 1 and "SIGTERM" in lines[0] and "Run the same command again to resume" in lines[0]
+    assert stage["step"] > interrupted["int"]["step"] and not stage["summary"]
+    assert stage["temp_files"] == []  # a stop at a step boundary leaves no half-written file
+
+
+def test_resumed_run_ends_with_the_numbers_of_an_uninterrupted_one(interrupted, reference):
+    final = interrupted["final"]
+    assert final["rc"] == 0, final["stderr"][-2000:]
+    assert f"from step {interrupted['term']['step']}" in final["stdout"]
+    run_dir = interrupted["term"]["run_dir"]
+    resumed, whole = summary(run_dir), summary(reference)
+    assert resumed["status"] == whole["status"] == "completed"
+    for key in ("final_val_loss", "final_train_loss", "tokens", "step", "train_flops"):
+        assert resumed[key] == whole[key], key
+    # tensorboard's own event reader: same steps, no duplicates or gaps, same values
+    for tag in ("loss/train", "loss/val", "optim/lr", "compute/train_flops", "final/val_loss"):
+        assert scalars(run_dir, tag) == scalars(reference, tag), tag
+
+
+def copy_of_run(run_dir, root):
+    """The reference run folder at the same place under another run root, without its summary,
+    as an interrupted run would leave it."""
+    target = Path(root) / run_dir.relative_to(run_dir.parents[1])
+    shutil.copytree(run_dir, target)
+    (target / "summary.json").unlink()
+    return target
+
+
+def assert_refused(proc, run_dir, checkpoint_bytes, words):
+    assert proc.returncode == 2, (proc.returncode, proc.stderr[-2000:])
+    lines = error_lines(proc)
+    assert len(lines) == 1 and "Traceback" not in proc.stderr, proc.stderr
+    assert all(w in lines[0] for w in words), lines[0]
+    assert (run_dir / "checkpoint.pt").read_bytes() == checkpoint_bytes  # left as found
+    assert not (run_dir / "summary.json").exists()
+    assert lines[0].removeprefix("ablate-train: ") in (run_dir / "train.log").read_text()
+
+
+def test_truncated_checkpoint_is_refused_in_one_line(tmp_path, cache, reference):
+    run_dir = copy_of_run(reference, tmp_path)
+    ckpt = run_dir / "checkpoint.pt"
+    cut = ckpt.read_bytes()[: ckpt.stat().st_size // 2]
+    ckpt.write_bytes(cut)
+    config_before = (run_dir / "config.yaml").read_bytes()
+    proc = train(RESUMABLE, tmp_path, cache)
+    assert_refused(proc, run_dir, cut, ["damaged or truncated", "delete it"])
+    assert (run_dir / "config.yaml").read_bytes() == config_before
+
+
+def test_checkpoint_from_another_config_is_refused(tmp_path, cache, reference, diverged_grid):
+    run_dir = copy_of_run(reference, tmp_path)
+    other = diverged_grid["completed"] / "checkpoint.pt"  # lr and checkpoint interval differ, same shapes
+    shutil.copyfile(other, run_dir / "checkpoint.pt")
+    proc = train(RESUMABLE, tmp_path, cache)
+    assert_refused(proc, run_dir, other.read_bytes(), ["another config", "fingerprint"])
+
+
+@pytest.fixture(scope="module")
+def diverged_grid(tmp_path_factory, cache):
+    root = tmp_path_factory.mktemp("grid")
+    proc = train(["-m", *SMOKE, f"optim.lr=2e-3,{DIVERGING_LR}"], root, cache)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    runs = {summary(d)["status"]: d for d in run_dirs(root)}
+    assert set(runs) == {"completed", "diverged"}, runs
+    return {"root": root, "proc": proc, **runs, "grid_dir": runs["completed"].parent}
+
+
+def test_divergence_stops_the_run_and_records_where(diverged_grid):
+    run_dir = diverged_grid["diverged"]
+    s = summary(run_dir)
+    assert f"optim.lr={DIVERGING_LR}" in s["cell"]
+    assert 1 <= s["diverged_at_step"] == s["step"] < s["total_steps"]  # stopped at once, not at the budget
+    assert s["diverged_at_tokens"] == s["tokens"] == s["step"] * s["tokens_per_step"]
+    assert s["diverged_on"] in ("loss", "gradient")
+    assert isinstance(s["last_finite_loss"], float) and math.isfinite(s["last_finite_loss"])
+    # the event file is kept, read back whole, and ends with the non-finite value where it diverged
+    tag = "loss/train" if s["diverged_on"] == "loss" else "optim/grad_norm"
+    step, value = scalars(run_dir, tag)[-1]
+    assert step == s["diverged_at_tokens"] and not math.isfinite(value)
+
+
+def test_grid_goes_on_past_a_diverged_run_and_lists_it(diverged_grid):
+    done = summary(diverged_grid["completed"])
+    assert done["status"] == "completed" and done["tokens"] == done["total_steps"] * done["tokens_per_step"]
+    assert f"diverged: {diverged_grid['diverged'].name}" in diverged_grid["proc"].stdout
+
+
+def test_report_lists_the_diverged_run(diverged_grid):
+    grid_dir = diverged_grid["grid_dir"]
+    proc = subprocess.run([sys.executable, "-m", "ablate.report", str(grid_dir)], capture_output=True, text=True,
+                          timeout=300, cwd=ROOT)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    report = (grid_dir / "report.md").read_text()
+    row = next(ln for ln in report.splitlines() if diverged_grid["diverged"].name in ln and "|" in ln)
+    assert "diverged" in row
+
+
+def test_rerunning_a_diverged_config_repeats_nothing(diverged_grid, cache):
+    # without -m the run folder of this config is the grid's cell (grid name "single" in both)
+    proc = train([*SMOKE, f"optim.lr={DIVERGING_LR}"], diverged_grid["root"], cache, timeout=120)
+    assert proc.returncode == 1 and "already diverged" in proc.stdout, (proc.returncode, proc.stdout, proc.stderr)
+
+
+def test_bad_config_the_data_reveals_leaves_only_the_error_in_train_log(tmp_path, cache):
+    """A window longer than the tokenized validation text is known only once the corpus is
+    tokenized, so it is found inside the run rather than by the pre-flight."""
+    proc = train([*SMOKE, "model.seq_len=100000"], tmp_path, cache, timeout=120)
+    assert proc.returncode == 2, proc.stderr[-2000:]
+    lines = error_lines(proc)
+    assert len(lines) == 1 and "Traceback" not in proc.stderr
+    assert "model.seq_len=100000" in lines[0] and "allowed:" in lines[0]
+    (run_dir,) = {p.parent for p in tmp_path.rglob("train.log")}
+    assert sorted(p.name for p in run_dir.iterdir()) == ["train.log"]
+    assert "model.seq_len=100000" in (run_dir / "train.log").read_text()
+
+
+# Cases of the issue's list that tests/test_train.py::BAD does not already hold.
+MORE_BAD = [
+    (["budget.batch_size=-4"], "budget.batch_size=-4"),
+    (["attention=differential", "attention.lambda_init=0"], "lambda_init=0"),
+    (["attention=differential", "attention.lambda_init=1.0"], "lambda_init=1.0"),
+    (["attention=differential", "attention.lambda_init=-0.2"], "lambda_init=-0.2"),
+]
+
+
+@pytest.mark.parametrize("args, word", MORE_BAD, ids=[" ".join(a) for a, _ in MORE_BAD])
+def test_more_bad_values_exit_2_before_anything_is_made(tmp_path, cache, args, word):
+    proc = train([*SMOKE, *args], tmp_path / "runs", cache, timeout=120)
+    assert proc.returncode == 2, (proc.returncode, proc.stderr[-2000:])
+    lines = error_lines(proc)
+    assert len(lines) == 1 and "Traceback" not in proc.stderr and word in lines[0], proc.stderr
+    assert not (tmp_path / "runs").exists()
+
+
+def test_summary_records_versions_commit_and_tree_state(reference):
+    import platform
+
+    import ablate
+
+    env = summary(reference)["environment"]
+    assert env["ablate_version"] == ablate.__version__
+    assert env["torch_version"] == torch.__version__ and env["python_version"] == platform.python_version()
+    assert env["threads"] == 1 and env["device"] == "cpu"  # runtime.threads=1 was asked for
+    if (ROOT / ".git").exists():
+        assert isinstance(env["git_dirty"], bool)
+        known = subprocess.run(["git", "-C", str(ROOT), "cat-file", "-e", f"{env['git_commit']}^{{commit}}"])
+        assert known.returncode == 0, env["git_commit"]  # a commit of this checkout
+    else:
+        assert env["git_commit"] is None and env["git_dirty"] is None
+
+
+def test_optimizer_step_is_skipped_on_a_non_finite_gradient():
+    from ablate.optim import build_optimizer, training_step
+
+    torch.manual_seed(0)
+    model = torch.nn.Sequential(torch.nn.Embedding(8, 4), torch.nn.Linear(4, 8, bias=False))
+    optimizer = build_optimizer(model, lr=1e-2)
+    batch = torch.randint(0, 8, (2, 5))
+    loss, grad_norm = training_step(model, optimizer, batch, lr=1e-2, grad_clip=1.0)
+    assert torch.isfinite(loss) and torch.isfinite(grad_norm)
+    with torch.no_grad():
+        model[1].weight[0, 0] = float("nan")
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    steps_before = [float(s["step"]) for s in optimizer.state.values()]
+    loss, grad_norm = training_step(model, optimizer, batch, lr=1e-2, grad_clip=1.0)
+    assert not torch.isfinite(grad_norm)
+    for key, value in model.state_dict().items():  # no update, not even AdamW's weight decay
+        torch.testing.assert_close(value, before[key], rtol=0, atol=0, equal_nan=True)
+    assert [float(s["step"]) for s in optimizer.state.values()] == steps_before == [1.0, 1.0]
+
+
+# The calls atomic_write_bytes makes, in order, as (os function, which call of it); the child
+# process dies (SIGKILL) on reaching it. The second fsync is the folder's, after the rename.
+KILL_POINTS = [("fdopen", 1, "old"), ("fsync", 1, "old"), ("chmod", 1, "old"), ("replace", 1, "old"),
+               ("fsync", 2, "new")]
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs os.fork (POSIX)")
+@pytest.mark.parametrize("call, nth, survivor", KILL_POINTS, ids=[f"{c}{n}" for c, n, _ in KILL_POINTS])
+def test_atomic_write_killed_at_each_step_leaves_a_whole_file(tmp_path, call, nth, survivor):
+    from ablate import records
+
+    target = tmp_path / "summary.json"
+    old, new = b"old " * 50000, b"new " * 60000
+    target.write_bytes(old)
+    pid = os.fork()
+    if pid == 0:  # child: die the moment atomic_write_bytes reaches the nth call of `call`
+        try:
+            real, calls = getattr(os, call), []
+
+            def hook(*args, **kwargs):
+                calls.append(1)
+                if len(calls) == nth:
+                    os.kill(os.getpid(), signal.SIGKILL)
+                return real(*args, **kwargs)
+
+            setattr(os, call, hook)
+            records.atomic_write_bytes(target, new)
+        finally:
+            os._exit(3)  # reached only when the kill point never came
+    _, status = os.waitpid(pid, 0)
+    assert os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGKILL
+    assert target.read_bytes() == (old if survivor == "old" else new)
+    left = records.remove_stale_temp_files(tmp_path)
+    assert len(left) == (1 if survivor == "old" else 0)
+    assert [p.name for p in tmp_path.iterdir()] == ["summary.json"]
+
+
+def test_load_checkpoint_refuses_files_that_are_not_ours(tmp_path):
+    from ablate.records import CheckpointError, load_checkpoint, save_checkpoint
+
+    plain = tmp_path / "plain.pt"
+    torch.save({"weights": torch.zeros(2)}, plain)
+    with pytest.raises(CheckpointError, match="not an ablate checkpoint"):
+        load_checkpoint(plain, "0" * 16)
+    # weights_only=True refuses pickled objects other than tensors and plain containers
+    # (torch.load docs, "weights_only"); such a file is refused, never unpickled
+    pickled = tmp_path / "pickled.pt"
+    torch.save({"fingerprint": "0" * 16, "step": 1, "model": {}, "optimizer": {}, "extra": Path("x")}, pickled)
+    with pytest.raises(CheckpointError, match="objects other than tensors"):
+        load_checkpoint(pickled, "0" * 16)
+    ours = tmp_path / "ours.pt"
+    save_checkpoint(ours, {"fingerprint": "a" * 16, "step": 3, "model": {}, "optimizer": {}})
+    assert load_checkpoint(ours, "a" * 16)["step"] == 3
+    with pytest.raises(CheckpointError, match="another config"):
+        load_checkpoint(ours, "b" * 16)

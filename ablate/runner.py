@@ -125,6 +125,8 @@ class StopSignals:
     def __enter__(self):
         for name in self.SIGNALS:
             sig = getattr(signal, name)
+            if signal.getsignal(sig) == signal.SIG_IGN:
+                continue  # ignored by whoever started us (nohup, a background job): keep it so
             try:
                 self._previous[sig] = signal.signal(sig, self._handle)
             except ValueError:  # not the main thread (some launchers): signals stay as they were

@@ -94,8 +94,11 @@ def save_checkpoint(path: Path, state: dict) -> None:
 
 
 def _first_line(exc: BaseException) -> str:
+    """The first sentence of an exception's message, for a one-line error."""
     text = str(exc).strip()
-    return text.splitlines()[0][:120] if text else type(exc).__name__
+    if not text:
+        return type(exc).__name__
+    return text.splitlines()[0].split(". ")[0].rstrip(".")[:160]
 
 
 def load_checkpoint(path: Path, fingerprint: str) -> dict:

@@ -174,6 +174,21 @@ def data_windows(corpus, seq_len: int, batch_size: int, seed: int, eval_windows:
     return batches, val
 
 
+def check_fits(model, saved: dict, path: Path) -> None:
+    """Refuse saved weights whose names or shapes differ from the model's (the same config can
+    build another model after the code changed)."""
+    own = model.state_dict()
+    missing = [k for k in own if k not in saved]
+    unexpected = [k for k in saved if k not in own]
+    reshaped = [k for k in own if k in saved and tuple(saved[k].shape) != tuple(own[k].shape)]
+    if missing or unexpected or reshaped:
+        example = (missing or unexpected or reshaped)[0]
+        raise records.CheckpointError(
+            f"checkpoint {path} does not fit this model ({len(missing)} tensors missing, {len(unexpected)} unexpected, "
+            f"{len(reshaped)} of another shape, e.g. {example}); delete it to start the run afresh"
+        )
+
+
 def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> dict:
     """Train one run to its budget (resuming if a checkpoint exists). Returns the summary.
 
@@ -225,13 +240,14 @@ def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> d
     last_val = None
     last_finite = None
     if state is not None:
+        check_fits(model, state["model"], ckpt_path)
         try:
             model.load_state_dict(state["model"])
             optimizer.load_state_dict(state["optimizer"])
         except (KeyError, ValueError, RuntimeError) as exc:
             raise records.CheckpointError(
-                f"checkpoint {ckpt_path} does not fit this model ({type(exc).__name__}: {str(exc).splitlines()[0][:160]}); "
-                "delete it to start the run afresh"
+                f"checkpoint {ckpt_path} does not fit this model or optimizer ({type(exc).__name__}: "
+                f"{str(exc).splitlines()[0][:160]}); delete it to start the run afresh"
             ) from None
         step, last_val, last_finite = int(state["step"]), state.get("last_val"), state.get("last_train")
         print(f"resuming {run_dir.name} from step {step} ({step * tokens_per_step:,} tokens)", flush=True)

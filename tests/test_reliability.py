@@ -379,3 +379,16 @@ def test_load_checkpoint_refuses_files_that_are_not_ours(tmp_path):
     assert load_checkpoint(ours, "a" * 16)["step"] == 3
     with pytest.raises(CheckpointError, match="another config"):
         load_checkpoint(ours, "b" * 16)
+
+
+def test_saved_weights_of_another_model_are_refused_before_loading():
+    from ablate.records import CheckpointError
+    from ablate.runner import check_fits
+
+    model = torch.nn.Sequential(torch.nn.Linear(4, 3, bias=False), torch.nn.Linear(3, 2, bias=False))
+    check_fits(model, model.state_dict(), Path("ok.pt"))  # its own weights fit
+    wider = torch.nn.Sequential(torch.nn.Linear(4, 5, bias=False), torch.nn.Linear(5, 2, bias=False))
+    with pytest.raises(CheckpointError, match=r"0 tensors missing, 0 unexpected, 2 of another shape, e\.g\. 0\.weight"):
+        check_fits(model, wider.state_dict(), Path("wide.pt"))
+    with pytest.raises(CheckpointError, match=r"1 tensors missing, 0 unexpected"):
+        check_fits(model, {"0.weight": model[0].weight}, Path("short.pt"))

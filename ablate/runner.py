@@ -130,7 +130,7 @@ class StopSignals:
             try:
                 self._previous[sig] = signal.signal(sig, self._handle)
             except ValueError:  # not the main thread (some launchers): signals stay as they were
-                self._previous.clear()
+                self.__exit__()
                 break
         return self
 

@@ -310,6 +310,9 @@ def parse_args(argv=None):
     for mode in args.compile:
         if mode not in COMPILE_MODES:
             parser.error(f"--compile={mode!r} must be one of {', '.join(COMPILE_MODES)}")
+    models = sorted(p.stem for p in (CONF_DIR / "model").glob("*.yaml"))
+    if args.model not in models:
+        parser.error(f"--model={args.model!r} must be one of {', '.join(models)}")
     known = set(named_choices())
     for name in args.attention:
         if name not in known:
@@ -355,8 +358,15 @@ def run(args) -> dict:
 
 
 def main(argv=None) -> int:
+    from hydra.errors import HydraException
+    from omegaconf.errors import OmegaConfBaseException
+
     args = parse_args(argv)
-    result = run(args)
+    try:
+        result = run(args)
+    except (HydraException, OmegaConfBaseException) as err:
+        print(f"ablate-bench: bad --override: {str(err).splitlines()[0]}", file=sys.stderr)
+        return 2
     print(format_table(result))
     if args.json is not None:
         args.json.parent.mkdir(parents=True, exist_ok=True)

@@ -76,6 +76,7 @@ def test_named_choices_are_the_config_files_standard_first():
     (["--attention", "standard,sparse"], ["--attention='sparse'", "differential"]),
     (["--compile", "graph"], ["--compile='graph'", "block", "model"]),
     (["--steps", "0"], ["--steps=0"]),
+    (["--model", "huge"], ["--model='huge'", "small", "tiny"]),
 ])
 def test_bad_options_name_the_option(argv, words, capsys):
     with pytest.raises(SystemExit) as err:
@@ -84,3 +85,10 @@ def test_bad_options_name_the_option(argv, words, capsys):
     message = capsys.readouterr().err
     for word in words:
         assert word in message
+
+
+def test_bad_override_is_one_readable_line(capsys):
+    assert main(["--attention", "standard", "--override", "model.no_such_key=3", "--steps", "1"]) == 2
+    message = capsys.readouterr().err.strip()
+    assert message.startswith("ablate-bench: bad --override:") and "no_such_key" in message
+    assert len(message.splitlines()) == 1

@@ -8,6 +8,7 @@ allowed.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional
 
@@ -93,13 +94,15 @@ def register() -> None:
 
 
 def _positive(key: str, value, kind=(int, float)) -> None:
-    if isinstance(value, bool) or not isinstance(value, kind) or not value > 0:
-        raise ConfigError(f"{key}={value!r}: must be a positive number")
+    if isinstance(value, bool) or not isinstance(value, kind) or not value > 0 or not math.isfinite(value):
+        raise ConfigError(f"{key}={value!r}: must be a positive, finite number")
 
 
 def validate(cfg) -> None:
     """Range and divisibility checks that types cannot express. Raises ConfigError."""
     m, o, b, r = cfg.model, cfg.optim, cfg.budget, cfg.runtime
+    if cfg.seed < 0:
+        raise ConfigError(f"seed={cfg.seed!r}: must be an integer >= 0")
     for key in ("d_model", "n_layers", "head_dim", "seq_len"):
         _positive(f"model.{key}", m[key], int)
     if m.ffn_hidden is not None:

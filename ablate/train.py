@@ -176,6 +176,14 @@ def _rel(path: Path) -> str:
 
 
 def main(argv: list[str] | None = None) -> None:
+    try:
+        _main(argv)
+    except KeyboardInterrupt:
+        print("ablate-train: interrupted before training started; nothing was written", file=sys.stderr)
+        sys.exit(130)
+
+
+def _main(argv: list[str] | None = None) -> None:
     argv = list(sys.argv[1:] if argv is None else argv)
     if not any(a in PASS_THROUGH or a.startswith(("--cfg", "--package")) for a in argv):
         try:

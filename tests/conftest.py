@@ -23,3 +23,9 @@ NAMED_ATTENTION = [
 def _deterministic():
     torch.manual_seed(0)
     yield
+
+
+@pytest.fixture(scope="session")
+def cache(tmp_path_factory):
+    """One corpus cache for every end-to-end test of the session (built once, reused)."""
+    return tmp_path_factory.mktemp("corpus-cache")

@@ -44,11 +44,6 @@ def report(grid_dir):
                           cwd=ROOT, timeout=300)
 
 
-@pytest.fixture(scope="module")
-def cache(tmp_path_factory):
-    return tmp_path_factory.mktemp("grid-cache")
-
-
 def test_smoke_grid_report_and_relaunch(tmp_path, cache):
     proc = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
     assert proc.returncode == 0, proc.stderr[-3000:]

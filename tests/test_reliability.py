@@ -29,11 +29,6 @@ DIVERGING_LR = "1000.0"
 REFERENCE = [*RESUMABLE, "optim.lr=0.002"]
 
 
-@pytest.fixture(scope="module")
-def cache(tmp_path_factory):
-    return tmp_path_factory.mktemp("corpus-cache")
-
-
 def start_train(args, run_root, cache):
     """``ablate-train`` in the background, as trainer_helpers.train runs it."""
     env = dict(os.environ, ABLATE_CACHE=str(cache), PYTHONHASHSEED="0")

@@ -10,11 +10,6 @@ SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA]
 
 
 @pytest.fixture(scope="session")
-def cache(tmp_path_factory):
-    return tmp_path_factory.mktemp("corpus-cache")
-
-
-@pytest.fixture(scope="session")
 def smoke_runs(tmp_path_factory, cache):
     root = tmp_path_factory.mktemp("smoke")
     out = {}

@@ -270,6 +270,9 @@ def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> d
         eval_every = max(1, round(cfg.budget.eval_every_tokens / tokens_per_step))
         ckpt_every = max(1, round(cfg.budget.checkpoint_every_tokens / tokens_per_step))
         log_every = cfg.budget.log_every_steps
+        probes_cfg = resolved.get("probes") or {}
+        probe_every_tokens = probes_cfg.get("every_tokens") if probes_cfg.get("enabled") else None
+        probe_every = max(1, round(probe_every_tokens / tokens_per_step)) if probe_every_tokens else None
         stop_after = cfg.runtime.stop_after_steps
         summary = {
             "status": "running",
@@ -344,6 +347,9 @@ def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> d
                     if step % eval_every == 0 or step == total_steps:
                         last_val = evaluate(model, val, batch_size)
                         writer.add_scalar("loss/val", last_val, tokens)
+                    if probe_every and step % probe_every == 0 and step < total_steps:
+                        # numbers only during training; pictures are drawn once, at the end
+                        run_probes(model, corpus, {**probes_cfg, "images": False}, device, writer, run_dir, tokens)
                     saved = step % ckpt_every == 0 or step == total_steps
                     if saved:
                         save(step)

@@ -21,15 +21,15 @@ from toy_corpus.world import FACT_ATTRIBUTES, all_words, build_world
 
 ROOT = Path(__file__).resolve().parent.parent
 SEQ_LEN = 256
-FACT = re.compile(r"(?<!check )\b(lamp|bell|horn|flag) ([A-Z][a-z]+) (\d+) \.")
-QUESTION = re.compile(r"check (lamp|bell|horn|flag) ([A-Z][a-z]+) (\d+) \.")
+FACT = re.compile(r"(?<!check )\b(lamp|bell|horn|flag) ([A-Z][a-z]+) (\d(?: \d)*) \.")
+QUESTION = re.compile(r"check (lamp|bell|horn|flag) ([A-Z][a-z]+) (\d(?: \d)*) \.")
 
 
 def small_config(**changes) -> dict:
     cfg = OmegaConf.to_container(OmegaConf.load(ROOT / "conf" / "data" / "toy.yaml"))
-    cfg["n_documents"] = 600
-    cfg["tokenizer"]["train_documents"] = 600
-    cfg["vocab_size"] = 512
+    cfg["n_documents"] = 800
+    cfg["tokenizer"]["train_documents"] = 800
+    cfg["vocab_size"] = 1024
     for key, value in changes.items():
         node = cfg
         *head, last = key.split(".")
@@ -97,7 +97,7 @@ def test_ids_are_uint16_and_every_document_starts_with_doc_start(corpus):
     assert corpus.train_ids.dtype == np.uint16 and corpus.val_ids.dtype == np.uint16
     assert corpus.train_ids[0] == DOC_START_ID
     assert int((corpus.train_ids == DOC_START_ID).sum()) == corpus.stats["train_documents"]
-    assert int(corpus.train_ids.max()) < corpus.vocab_size == 512
+    assert int(corpus.train_ids.max()) < corpus.vocab_size == 1024
 
 
 def test_sentencepiece_round_trip_on_generated_text(corpus):
@@ -167,13 +167,13 @@ def test_retrieval_spans_decode_to_what_they_claim(corpus):
         dec = lambda span: corpus.decode(toks[span[0]:span[1]])  # noqa: E731
         asked_keys = []
         for (a, b) in zip(item["asked_spans"], item["answer_spans"]):
-            attr, isle, value = dec(a).split(" ")
-            assert attr in FACT_ATTRIBUTES and value.isdigit()
+            attr, isle, value = dec(a).split(" ", 2)
+            assert attr in FACT_ATTRIBUTES and value.replace(" ", "").isdigit()
             assert dec(b) == value
             assert corpus.decode(toks[:b[0]]).endswith(f" check {attr} {isle}")
             asked_keys.append((attr, isle))
         for span in item["distractor_spans"]:
-            attr, isle, value = dec(span).split(" ")
+            attr, isle, value = dec(span).split(" ", 2)
             assert (attr, isle) not in asked_keys  # every distractor differs from the asked keys
         spans = sorted(item["asked_spans"] + item["distractor_spans"])
         assert all(e <= s for (_, e), (s, _) in zip(spans, spans[1:]))  # facts never overlap
@@ -186,7 +186,7 @@ def test_retrieval_has_near_miss_distractors(corpus):
         toks = item["tokens"]
         asked = [tuple(corpus.decode(toks[s:e]).split(" ")[:2]) for s, e in item["asked_spans"]]
         for s, e in item["distractor_spans"]:
-            attr, isle, _ = corpus.decode(toks[s:e]).split(" ")
+            attr, isle, _ = corpus.decode(toks[s:e]).split(" ", 2)
             n_same += any(isle == i and attr != a for a, i in asked)
             n_sib += any(isle == world.isle_sibling[i] and attr == a for a, i in asked)
     p = corpus.config["probes"]["retrieval"]
@@ -326,6 +326,7 @@ def test_windows_reject_impossible_requests(corpus):
     ({"probes.retrieval.context_lens": [96, 300]}, "data.probes.retrieval.context_lens: 300"),
     ({"tokenizer.model_type": "words"}, "data.tokenizer.model_type='words'"),
     ({"facts.n_facts": [5, 2]}, "data.facts.n_facts=[5, 2]"),
+    ({"facts.layout": "sideways"}, "data.facts.layout='sideways'"),
 ])
 def test_bad_config_fails_before_generating(tmp_path, changes, key):
     cfg = small_config()
@@ -354,3 +355,26 @@ def test_vocabulary_bounds_are_real():
     assert len(train_tokenizer(texts, lo, "bpe")) > 0
     with pytest.raises(ValueError, match="data.vocab_size"):
         train_tokenizer(texts, lo - 2, "unigram")
+
+
+# ----------------------------------------------------------------------------- other document shapes
+def test_copy_entries_repeat_their_note_exactly():
+    cfg = small_config()
+    world = world_of(cfg)
+    kinds, texts = generate_documents(world, cfg, 200, "train-copy")
+    copies = [t for k, t in zip(kinds, texts) if k == "copy"]
+    assert copies
+    for t in copies:
+        note = re.fullmatch(r"rough note at \w+ light : (.+) \. fair copy : (.+) \.", t)
+        assert note and note.group(1) == note.group(2)
+
+
+def test_value_first_layout_probes_keep_their_spans(tmp_path):
+    c = get_corpus(small_config(**{"facts.layout": "value_first"}), SEQ_LEN, tmp_path)
+    for item in c.probe_sets["retrieval"][::5]:
+        toks = item["tokens"]
+        for (a, b) in zip(item["asked_spans"], item["answer_spans"]):
+            m = re.fullmatch(r"code (\d(?: \d)*) (lamp|bell|horn|flag) ([A-Z][a-z]+)", c.decode(toks[a[0]:a[1]]))
+            assert m and c.decode(toks[b[0]:b[1]]) == m.group(1)
+            assert c.decode(toks[:b[0]]).endswith(f" check {m.group(2)} {m.group(3)}")
+    assert "code" in c.documents("train")[0] or any(" code " in d for d in c.documents("train")[:50])

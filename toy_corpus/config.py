@@ -9,7 +9,7 @@ import numbers
 from typing import Any, Mapping
 
 from . import world as W
-from .documents import DOCUMENT_KINDS
+from .documents import DOCUMENT_KINDS, FACT_LAYOUTS
 
 UINT16_LIMIT = 65535
 N_SPECIAL_TOKENS = 3  # <unk>, <s>, </s>
@@ -112,12 +112,18 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
     if p1 + p2 > 1.0:
         raise ValueError(f"data.facts.p_same_isle + data.facts.p_sibling = {p1 + p2}: must be <= 1")
     _int(cfg, "facts.questions", 0)
+    layout = cfg["facts"].get("layout", "key_first")
+    if layout not in FACT_LAYOUTS:
+        raise ValueError(f"data.facts.layout={layout!r}; allowed: {', '.join(FACT_LAYOUTS)}")
     _range(cfg, "classify.n_classes", 2, len(W.SIGHTINGS))
     _range(cfg, "classify.demos_per_class", 1, 20)
     _int(cfg, "classify.queries", 0, 100)
     _int(cfg, "classify.noise_features", 0, len(W.REPORT_FEATURES))
     _real(cfg, "classify.p_grouped", 0.0, 1.0)
 
+    if "copy" in mixture:
+        _real(cfg, "copy.zipf", 0.0, 3.0)
+        _range(cfg, "copy.words", 1, 500)
     model_type = _get(cfg, "tokenizer.model_type")
     if model_type not in TOKENIZER_TYPES:
         raise ValueError(f"data.tokenizer.model_type={model_type!r}; allowed: {', '.join(TOKENIZER_TYPES)}")

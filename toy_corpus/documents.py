@@ -15,13 +15,21 @@ from typing import Mapping, Sequence
 from . import world as W
 from .world import World
 
-DOCUMENT_KINDS = ("narrative", "facts", "classify")
+DOCUMENT_KINDS = ("narrative", "facts", "classify", "copy")
 
 
 # ----------------------------------------------------------------------------- shared shapes
-def fact_text(attribute: str, isle: str, value: str) -> str:
-    """One fact: ``lamp Brelo 47`` (attribute, isle, digits). The isle sits right before the value."""
-    return f"{attribute} {isle} {value}"
+FACT_LAYOUTS = ("key_first", "value_first")
+
+
+def fact_text(attribute: str, isle: str, value: str, layout: str = "key_first") -> str:
+    """One fact. ``key_first``: ``lamp Brelo 4 7`` (the isle right before the value, as in the
+    question); ``value_first``: ``code 4 7 lamp Brelo`` (the value read before its key)."""
+    if layout == "key_first":
+        return f"{attribute} {isle} {value}"
+    if layout == "value_first":
+        return f"code {value} {attribute} {isle}"
+    raise ValueError(f"data.facts.layout={layout!r}; allowed: {', '.join(FACT_LAYOUTS)}")
 
 
 def question_text(attribute: str, isle: str) -> str:
@@ -35,7 +43,8 @@ def report_text(noise: Sequence[tuple[str, str]], sighting: str) -> str:
 
 
 def draw_value(rng: random.Random, digits: int) -> str:
-    return "".join(rng.choice("0123456789") for _ in range(digits))
+    """A code of ``digits`` digits written apart (``4 7``), so that every digit is one piece."""
+    return " ".join(rng.choice("0123456789") for _ in range(digits))
 
 
 class ZipfPicker:
@@ -127,7 +136,7 @@ def facts_entry(rng: random.Random, world: World, filler: ZipfPicker, cfg: Mappi
         gap = rng.randint(*cfg["filler_words"])
         if gap:
             parts.append(" ".join(filler(rng, gap)))
-        parts.append(fact_text(attr, isle, value) + " .")
+        parts.append(fact_text(attr, isle, value, cfg.get("layout", "key_first")) + " .")
     tail = rng.randint(*cfg["filler_words"])
     if tail:
         parts.append(" ".join(filler(rng, tail)))
@@ -187,6 +196,13 @@ def classify_entry(rng: random.Random, world: World, cfg: Mapping) -> str:
                     + [f"{d['text']} {d['label']} ." for d in lines])
 
 
+# ----------------------------------------------------------------------------- fair copies
+def copy_entry(rng: random.Random, world: World, words: ZipfPicker, cfg: Mapping) -> str:
+    """A rough note and the keeper's fair copy of it: the same words twice (pure copying)."""
+    note = " ".join(words(rng, rng.randint(*cfg["words"])))
+    return f"rough note at {world.lighthouses[rng.choice(world.isles)]} light : {note} . fair copy : {note} ."
+
+
 # ----------------------------------------------------------------------------- the stream
 class DocumentMaker:
     """Builds documents of each kind from one data config (see conf/data/toy.yaml)."""
@@ -195,6 +211,7 @@ class DocumentMaker:
         self.world, self.cfg = world, cfg
         self.grammar = NarrativeGrammar(world, cfg["narrative"]["zipf"])
         self.filler = ZipfPicker(world.filler_words, cfg["facts"]["filler_zipf"])
+        self.copy_words = ZipfPicker(world.filler_words, cfg["copy"]["zipf"]) if "copy" in cfg else None
 
     def make(self, kind: str, rng: random.Random) -> str:
         if kind == "narrative":
@@ -203,6 +220,8 @@ class DocumentMaker:
             return facts_entry(rng, self.world, self.filler, self.cfg["facts"])
         if kind == "classify":
             return classify_entry(rng, self.world, self.cfg["classify"])
+        if kind == "copy":
+            return copy_entry(rng, self.world, self.copy_words, self.cfg["copy"])
         raise ValueError(f"data.mixture: unknown document kind {kind!r}; allowed: {', '.join(DOCUMENT_KINDS)}")
 
 

@@ -61,7 +61,7 @@ def _needle_keys(rng: random.Random, world: World, n_needles: int, n_asked: int,
 
 
 def retrieval_item(rng: random.Random, world: World, encode: Encode, filler: ZipfPicker, context_len: int, depth: float,
-                   n_needles: int, n_asked: int, n_same: int, n_sibling: int, digits: int) -> dict:
+                   n_needles: int, n_asked: int, n_same: int, n_sibling: int, digits: int, layout: str = "key_first") -> dict:
     needles, asked, near = _needle_keys(rng, world, n_needles, n_asked, n_same, n_sibling)
     values = [draw_value(rng, digits) for _ in needles]
     asked_values = {values[i] for i in asked}
@@ -72,8 +72,8 @@ def retrieval_item(rng: random.Random, world: World, encode: Encode, filler: Zip
             v = draw_value(rng, digits)
         near_values.append(v)
     header = f"log of {world.lighthouses[rng.choice(world.isles)]} light , codes ."
-    facts = [fact_text(a, i, v) for (a, i), v in zip(needles, values)]
-    near_facts = [fact_text(a, i, v) for (a, i), v in zip(near, near_values)]
+    facts = [fact_text(a, i, v, layout) for (a, i), v in zip(needles, values)]
+    near_facts = [fact_text(a, i, v, layout) for (a, i), v in zip(near, near_values)]
     questions = [(question_text(*needles[i]), values[i]) for i in asked]
 
     fixed = 1 + len(encode(header)) + sum(len(encode(f)) + len(encode(".")) for f in facts + near_facts)
@@ -141,7 +141,8 @@ def retrieval_set(world: World, encode: Encode, cfg: Mapping, seed: int) -> list
                     for k in range(p["items_per_cell"]):
                         rng = random.Random(f"probe-retrieval-{seed}-{L}-{depth}-{n}-{r}-{k}")
                         items.append(retrieval_item(rng, world, encode, filler, L, depth, n, r, p["same_isle_distractors"],
-                                                    p["sibling_distractors"], cfg["facts"]["value_digits"]))
+                                                    p["sibling_distractors"], cfg["facts"]["value_digits"],
+                                                    cfg["facts"].get("layout", "key_first")))
     return items
 
 

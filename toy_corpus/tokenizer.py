@@ -14,7 +14,8 @@ def train_tokenizer(texts: Sequence[str], vocab_size: int, model_type: str) -> b
     """Train on ``texts`` (one document per item) and return the serialized model.
 
     Deterministic: no input sampling or shuffling, one thread, identity normalisation (the text
-    is plain ASCII), digits split into single pieces, pieces never cross a space.
+    is plain ASCII), pieces never cross a space (the generator writes
+    code digits apart, so each digit is one piece).
     """
     model = io.BytesIO()
     try:
@@ -25,7 +26,7 @@ def train_tokenizer(texts: Sequence[str], vocab_size: int, model_type: str) -> b
             model_type=model_type,
             character_coverage=1.0,
             normalization_rule_name="identity",
-            split_digits=True,
+            split_digits=False,
             split_by_whitespace=True,
             input_sentence_size=0,
             shuffle_input_sentence=False,

@@ -101,6 +101,13 @@ def validate_all(cfg) -> None:
         toy_corpus.check_config(OmegaConf.to_container(cfg.data, resolve=True), cfg.model.seq_len)
     except ValueError as exc:
         raise ConfigError(f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)) from None
+    if cfg.get("probes") is not None:
+        from .probes import resolve_config
+
+        try:
+            resolve_config(OmegaConf.to_container(cfg.probes, resolve=True))
+        except ValueError as exc:
+            raise ConfigError(one_line(exc)) from None
     try:
         with torch.device("meta"):
             instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)

@@ -78,6 +78,8 @@ def resolve_config(probes_cfg: Mapping) -> dict:
     for name in ("n_images", "image_layers", "val_windows", "position_buckets", "batch_tokens"):
         _positive_int(name, cfg[name])
     _positive_int("max_items", cfg["max_items"], allow_none=True)
+    if isinstance(cfg["every_tokens"], float) and cfg["every_tokens"].is_integer():
+        cfg["every_tokens"] = int(cfg["every_tokens"])  # 5e5 on the command line arrives as a float
     _positive_int("every_tokens", cfg["every_tokens"], allow_none=True)
     return cfg
 

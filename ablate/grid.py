@@ -173,22 +173,43 @@ def differing_keys(a: list[str], b: list[str]) -> set[str]:
     return {k for k in set(da) | set(db) if da.get(k) != db.get(k) and k not in NOT_DESIGN}
 
 
+def _as_dict(overrides: list[str]) -> dict:
+    return {k: v for k, v in (o.split("=", 1) for o in overrides if "=" in o) if k not in NOT_DESIGN}
+
+
+def matched_reference(cell: Cell, base: Cell, cells: list[Cell], unequal_axes: list[str]) -> Cell | None:
+    """The cell to check ``cell`` against: the baseline's choices, with the unequal-on-purpose
+    axes set to this cell's values (so a size sweep compares each design at the same size)."""
+    want = _as_dict(base.overrides)
+    mine = _as_dict(cell.overrides)
+    for axis in unequal_axes:
+        want.pop(axis, None)
+        if axis in mine:
+            want[axis] = mine[axis]
+    return next((c for c in cells if _as_dict(c.overrides) == want), None)
+
+
 def check_fairness(cells: list[Cell], baseline: str, tolerance: float, unequal_axes: list[str]) -> list[dict]:
-    """Raise ConfigError with a table when a cell's parameter count differs from the baseline's
-    by more than ``tolerance``, unless every key it differs in is declared unequal on purpose."""
+    """Raise ConfigError with a table when a cell's parameter count differs by more than
+    ``tolerance`` from the baseline's at the same values of the axes declared unequal on purpose
+    (``unequal_axes``); every other axis is still checked."""
     rows = fairness_table(cells, baseline)
     base = next(c for c in cells if c.name == baseline)
     bad = []
     for c, row in zip(cells, rows):
-        off = abs(row["params_ratio"] - 1)
-        if off > tolerance:
-            axes = differing_keys(c.overrides, base.overrides)
-            if not axes or not axes <= set(unequal_axes):
-                bad.append(row)
+        reference = matched_reference(c, base, cells, unequal_axes)
+        if reference is None:  # no like-for-like cell: only declared axes may differ from the baseline
+            off = abs(row["params_ratio"] - 1)
+            if off > tolerance and not differing_keys(c.overrides, base.overrides) <= set(unequal_axes):
+                bad.append((row, base.name, row["params_ratio"]))
+            continue
+        ratio = c.accounting.params / reference.accounting.params
+        if abs(ratio - 1) > tolerance:
+            bad.append((row, reference.name, ratio))
     if bad:
         raise ConfigError(
             f"grid is not parameter-matched within grid.tolerance={tolerance}: "
-            + "; ".join(f"{r['cell']} has {r['params']:,} params ({(r['params_ratio'] - 1) * 100:+.1f}% vs baseline)" for r in bad)
+            + "; ".join(f"{r['cell']} has {r['params']:,} params ({(ratio - 1) * 100:+.1f}% vs {ref})" for r, ref, ratio in bad)
             + ". Declare the axis in grid.unequal_axes if that is on purpose.\n"
             + format_table(rows)
         )

@@ -82,3 +82,13 @@ def test_a_a_grid_reports_a_difference_whose_interval_covers_zero(tmp_path, cach
     assert int(row["n"]) == 3
     low, high = float(row["diff_ci_low"]), float(row["diff_ci_high"])
     assert float(row["diff_to_baseline"]) == 0.0 and low <= 0.0 <= high
+
+
+def test_size_sweep_checks_each_design_at_the_same_size():
+    # The swept depth may change the parameter count; attention must still match at each depth.
+    grid = preflight(["-m", "recipe=size_sweep"])
+    assert grid["jobs"] == 24 and grid["sweep"]["key"] == "model.n_layers"
+    with pytest.raises(ConfigError, match="grid.tolerance"):
+        preflight(["-m", "recipe=size_sweep", "grid.unequal_axes=[]"])
+    with pytest.raises(ConfigError, match="model.d_model=192"):
+        preflight(["-m", "recipe=size_sweep", "model.n_layers=2", "model.d_model=128,192"])

@@ -52,8 +52,7 @@ def preflight(argv: list[str]) -> dict | None:
                      if len({dict(x.split("=", 1) for x in cc.overrides if "=" in x).get(o.split("=", 1)[0]) for cc in cells}) > 1})
     from omegaconf import OmegaConf
 
-    sweep_dir = Path(OmegaConf.to_container(base, resolve=False)["hydra"]["sweep"]["dir"]
-                     .replace("${run_root}", str(base.run_root)).replace("${grid.name}", str(grid.name)))
+    sweep_dir = Path(base.hydra.sweep.dir)  # OmegaConf resolves ${run_root}/${grid.name} itself
     return {
         "recipe": base.hydra.runtime.choices.get("recipe"),
         "name": str(grid.name),

@@ -327,6 +327,9 @@ def test_windows_reject_impossible_requests(corpus):
     ({"tokenizer.model_type": "words"}, "data.tokenizer.model_type='words'"),
     ({"facts.n_facts": [5, 2]}, "data.facts.n_facts=[5, 2]"),
     ({"facts.layout": "sideways"}, "data.facts.layout='sideways'"),
+    ({"facts.mentions": [0, 2]}, "data.facts.mentions=[0, 2]"),
+    ({"copy.distinct": "yes"}, "data.copy.distinct='yes'"),
+    ({"copy.distinct": True, "copy.words": [8, 500]}, "data.copy.words=[8, 500]: with copy.distinct=true"),
 ])
 def test_bad_config_fails_before_generating(tmp_path, changes, key):
     cfg = small_config()
@@ -367,6 +370,33 @@ def test_copy_entries_repeat_their_note_exactly():
     for t in copies:
         note = re.fullmatch(r"rough note at \w+ light : (.+) \. fair copy : (.+) \.", t)
         assert note and note.group(1) == note.group(2)
+
+
+def test_distinct_notes_never_repeat_a_word():
+    cfg = small_config(**{"copy.distinct": True, "copy.words": [30, 60]})
+    kinds, texts = generate_documents(world_of(cfg), cfg, 300, "train-distinct")
+    notes = [re.fullmatch(r"rough note at \w+ light : (.+) \. fair copy : \1 \.", t) for k, t in zip(kinds, texts) if k == "copy"]
+    assert notes and all(notes)
+    for note in notes:
+        words = note.group(1).split()
+        assert 30 <= len(words) <= 60 and len(set(words)) == len(words)
+    # the default (with replacement) does repeat words in notes this long: the knob changes something
+    plain = small_config(**{"copy.words": [30, 60]})
+    kinds, texts = generate_documents(world_of(plain), plain, 300, "train-distinct")
+    assert any(len(set(t.split(" : ")[1].split())) < len(t.split(" : ")[1].split()) for k, t in zip(kinds, texts) if k == "copy")
+
+
+def test_fact_mentions_repeat_each_fact_within_range_before_its_question():
+    cfg = small_config(**{"facts.mentions": [2, 3]})
+    kinds, texts = generate_documents(world_of(cfg), cfg, 300, "train-mentions")
+    entries = [t for k, t in zip(kinds, texts) if k == "facts"]
+    assert entries
+    for t in entries:
+        body, _, asked = t.partition(" check ")
+        counts = Counter(m.group(0) for m in FACT.finditer(body))
+        assert counts and all(2 <= c <= 3 for c in counts.values())
+        for q in QUESTION.finditer("check " + asked):  # every asked fact was written with the same value
+            assert f"{q.group(1)} {q.group(2)} {q.group(3)} ." in counts
 
 
 def test_value_first_layout_probes_keep_their_spans(tmp_path):

@@ -112,6 +112,8 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
     if p1 + p2 > 1.0:
         raise ValueError(f"data.facts.p_same_isle + data.facts.p_sibling = {p1 + p2}: must be <= 1")
     _int(cfg, "facts.questions", 0)
+    if "mentions" in cfg["facts"]:
+        _range(cfg, "facts.mentions", 1, 10)
     layout = cfg["facts"].get("layout", "key_first")
     if layout not in FACT_LAYOUTS:
         raise ValueError(f"data.facts.layout={layout!r}; allowed: {', '.join(FACT_LAYOUTS)}")
@@ -123,7 +125,15 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
 
     if "copy" in mixture:
         _real(cfg, "copy.zipf", 0.0, 3.0)
-        _range(cfg, "copy.words", 1, 500)
+        w_lo, w_hi = _range(cfg, "copy.words", 1, 500)
+        distinct = cfg["copy"].get("distinct", False)
+        if not isinstance(distinct, bool):
+            raise ValueError(f"data.copy.distinct={distinct!r}: must be true or false")
+        wc = cfg["world"]
+        n_words = len(W.build_world(0, wc["isle_pairs"], wc["keepers"], wc["ships"], wc["labels"]).filler_words)
+        if distinct and w_hi > n_words:
+            raise ValueError(f"data.copy.words={[w_lo, w_hi]}: with copy.distinct=true a note has at most {n_words} words "
+                             f"(the filler lexicon); allowed: upper bound <= {n_words}")
     model_type = _get(cfg, "tokenizer.model_type")
     if model_type not in TOKENIZER_TYPES:
         raise ValueError(f"data.tokenizer.model_type={model_type!r}; allowed: {', '.join(TOKENIZER_TYPES)}")

@@ -57,6 +57,18 @@ class ZipfPicker:
     def __call__(self, rng: random.Random, k: int = 1) -> list[str]:
         return rng.choices(self.items, cum_weights=self.cum, k=k)
 
+    def distinct(self, rng: random.Random, k: int) -> list[str]:
+        """``k`` different items, each drawn by the same weights among those not yet drawn."""
+        if k > len(self.items):
+            raise ValueError(f"cannot draw {k} distinct words from {len(self.items)}")
+        weights = [b - a for a, b in zip([0.0] + self.cum[:-1], self.cum)]
+        pool = list(range(len(self.items)))
+        out = []
+        for _ in range(k):
+            j = rng.choices(range(len(pool)), weights=[weights[i] for i in pool])[0]
+            out.append(self.items[pool.pop(j)])
+        return out
+
     def one(self, rng: random.Random) -> str:
         return self.items[bisect.bisect(self.cum, rng.random() * self.cum[-1])]
 
@@ -132,7 +144,15 @@ def facts_entry(rng: random.Random, world: World, filler: ZipfPicker, cfg: Mappi
     keys = pick_fact_keys(rng, world, n, cfg["p_same_isle"], cfg["p_sibling"])
     values = [draw_value(rng, cfg["value_digits"]) for _ in keys]
     parts = [f"log of {world.lighthouses[keys[0][1]]} light , codes ."]
-    for (attr, isle), value in zip(keys, values):
+    # each fact is written `mentions` times (drawn per fact); later mentions can be copied from
+    # earlier ones, which gives the model more chances to learn to look a fact up by its key
+    lo, hi = cfg.get("mentions", (1, 1))
+    written = list(range(n))
+    if hi > 1:
+        written += [i for i in range(n) for _ in range(rng.randint(lo, hi) - 1)]
+        rng.shuffle(written)
+    for i in written:
+        (attr, isle), value = keys[i], values[i]
         gap = rng.randint(*cfg["filler_words"])
         if gap:
             parts.append(" ".join(filler(rng, gap)))
@@ -199,7 +219,8 @@ def classify_entry(rng: random.Random, world: World, cfg: Mapping) -> str:
 # ----------------------------------------------------------------------------- fair copies
 def copy_entry(rng: random.Random, world: World, words: ZipfPicker, cfg: Mapping) -> str:
     """A rough note and the keeper's fair copy of it: the same words twice (pure copying)."""
-    note = " ".join(words(rng, rng.randint(*cfg["words"])))
+    k = rng.randint(*cfg["words"])
+    note = " ".join(words.distinct(rng, k) if cfg.get("distinct", False) else words(rng, k))
     return f"rough note at {world.lighthouses[rng.choice(world.isles)]} light : {note} . fair copy : {note} ."
 
 

@@ -92,3 +92,12 @@ def test_size_sweep_checks_each_design_at_the_same_size():
         preflight(["-m", "recipe=size_sweep", "grid.unequal_axes=[]"])
     with pytest.raises(ConfigError, match="model.d_model=192"):
         preflight(["-m", "recipe=size_sweep", "model.n_layers=2", "model.d_model=128,192"])
+
+
+@pytest.mark.parametrize("recipe", sorted(p.stem for p in (ROOT / "recipes").glob("*.yaml")))
+def test_every_shipped_recipe_passes_its_preflight(recipe):
+    """Each recipe composes, validates and passes the fairness gate as shipped, and its grid has
+    the baseline it names among its cells."""
+    grid = preflight(["-m", f"recipe={recipe}"])
+    assert grid["jobs"] >= 2
+    assert grid["baseline"] in {row["cell"] for row in grid["fairness"]}

@@ -58,6 +58,7 @@ from ablate import efficiency
 from ablate.stats import mean_ci, paired_difference, seeds_needed
 
 LOSS = "final_val_loss"
+COPY_LEVEL = "/copy_level"   # a property of the probe set, reported beside the probes, not as one
 DEFAULT_HALFWIDTH = 0.01
 CSV_COLUMNS = ["cell", "metric", "n", "mean", "ci_low", "ci_high", "diff_to_baseline", "diff_ci_low",
                "diff_ci_high", "p_value", "n_paired", "seeds_needed", "reference", "note"]
@@ -111,7 +112,7 @@ class Run:
     def metrics(self) -> dict[str, float]:
         values = {LOSS: self.final_loss}
         for name, value in (self.summary.get("probes") or {}).items():
-            if _is_number(value):
+            if _is_number(value) and not str(name).endswith(COPY_LEVEL):
                 values[str(name)] = float(value)
         return {k: v for k, v in values.items() if math.isfinite(v)}
 
@@ -630,6 +631,20 @@ def seeds_sentence(row: Row, halfwidth: float, unit: str) -> str:
             f"(normal approximation: {row.seeds_needed_normal}).")
 
 
+def copy_levels(runs: list[Run]) -> dict[str, float]:
+    """``probe family -> copy level`` from completed runs' summaries (a property of the probe set;
+    when runs disagree, e.g. different data configs, the family's range is not one number and it
+    is left out)."""
+    seen: dict[str, set[float]] = {}
+    for run in runs:
+        if not run.usable:
+            continue
+        for name, value in (run.summary.get("probes") or {}).items():
+            if str(name).endswith(COPY_LEVEL) and _is_number(value) and math.isfinite(float(value)):
+                seen.setdefault(str(name)[: -len(COPY_LEVEL)], set()).add(round(float(value), 9))
+    return {family: values.pop() for family, values in seen.items() if len(values) == 1}
+
+
 def left_out_rows(runs: list[Run]) -> list[list[str]]:
     rows = []
     for run in sorted(runs, key=lambda r: r.name):
@@ -757,6 +772,11 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     probe_rows = [r for r in rows if r.metric != LOSS]
     md += ["", "## Probes", ""]
     md += metric_table(probe_rows, with_metric=True) if probe_rows else ["No probe numbers in summary.json."]
+    levels = copy_levels(runs)
+    if levels:
+        md += ["", "Copy levels: what a model scores by copying a random fact's value (retrieval) or a random "
+               "label of the episode (classification) from the item; an accuracy at or below its level shows "
+               "no recall. " + "; ".join(f"`{name}/acc` {value:.3f}" for name, value in sorted(levels.items())) + "."]
     md += ["", "## How many seeds are enough", ""]
     loss_comparisons = [r for r in rows if r.metric == LOSS and r.cell != r.reference]
     md += [f"- {seeds_sentence(r, halfwidth, ' nats')}" for r in loss_comparisons] or ["- Only one cell: nothing to compare."]

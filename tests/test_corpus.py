@@ -408,3 +408,33 @@ def test_value_first_layout_probes_keep_their_spans(tmp_path):
             assert m and c.decode(toks[b[0]:b[1]]) == m.group(1)
             assert c.decode(toks[:b[0]]).endswith(f" check {m.group(2)} {m.group(3)}")
     assert "code" in c.documents("train")[0] or any(" code " in d for d in c.documents("train")[:50])
+
+
+def test_copy_levels_match_a_simulated_random_copier(corpus):
+    """The probes' copy levels equal what a model scores by copying a random fact's value (or a
+    random label of the episode), simulated on the actual items."""
+    from ablate.probes.classification import summarize as class_summary
+    from ablate.probes.retrieval import summarize as retrieval_summary
+
+    rng = random.Random(0)
+    items = corpus.probe_sets["retrieval"]
+    level = retrieval_summary(items, [[False] * len(it["answer_spans"]) for it in items])["retrieval/copy_level"]
+    hits = []
+    for _ in range(40):
+        for it in items:
+            facts = it["asked_spans"] + it["distractor_spans"]
+            ok = True
+            for s, e in it["answer_spans"]:
+                fs, fe = rng.choice(facts)
+                ok &= it["tokens"][fe - (e - s):fe] == it["tokens"][s:e]  # a fact's value is its last tokens
+            hits.append(ok)
+    assert abs(np.mean(hits) - level) < 3 * math.sqrt(level * (1 - level) / len(hits))
+
+    items = corpus.probe_sets["classification"]
+    level = class_summary(items, [[False] * len(it["answer_spans"]) for it in items])["classification/copy_level"]
+    hits = []
+    for _ in range(40):
+        for it in items:
+            labels = sorted({tuple(it["tokens"][s:e]) for s, e in it["demo_label_spans"]})
+            hits += [list(rng.choice(labels)) == it["tokens"][s:e] for s, e in it["answer_spans"]]
+    assert abs(np.mean(hits) - level) < 3 * math.sqrt(level * (1 - level) / len(hits))

@@ -12,7 +12,8 @@ and the order spread ``classification/order_std_<kind>`` and ``classification/or
 ``random``, ``grouped`` and ``all`` (every ordering of the episode). For one episode the spread is
 the sample standard deviation (ddof=1) and the best minus the worst item accuracy over its
 orderings of that kind; the key is the mean over episodes. A kind with fewer than two orderings in
-every episode has no spread and its keys are left out.
+every episode has no spread and its keys are left out. ``classification/copy_level`` is what
+copying the label of a random class of the episode scores (1 / C per query).
 """
 
 from __future__ import annotations
@@ -72,6 +73,9 @@ def summarize(items: Sequence[dict], results: Sequence[Sequence[bool]]) -> dict[
         base = f"classification/{prefix}/" if prefix else "classification/"
         out[f"{base}order_std_{kind}"] = float(np.mean([v[0] for v in values]))
         out[f"{base}order_range_{kind}"] = float(np.mean([v[1] for v in values]))
+    # what copying the label of a random class seen in the episode scores: 1 / n_classes per query
+    out["classification/copy_level"] = float(np.mean([1.0 / int(it["meta"]["n_classes"])
+                                                      for it, res in zip(items, results) for _ in res]))
     out["classification/n_items"] = float(len(items))
     return out
 

@@ -5,6 +5,7 @@ An item is correct when all of its answer spans are reproduced by the model's ar
 
 Keys (``L`` context length, ``D`` depth in shortest form, ``N`` needles, ``R`` asked needles):
 ``retrieval/acc`` (all items), ``retrieval/answer_acc`` (share of answer spans right),
+``retrieval/copy_level`` (what copying a random fact's value from the context scores),
 ``retrieval/acc_len<L>``, ``retrieval/acc_depth<D>``, ``retrieval/acc_n<N>``, ``retrieval/acc_r<R>``,
 ``retrieval/acc_len<L>_depth<D>`` (the length x depth grid), ``retrieval/acc_len<L>_depth<D>_n<N>_r<R>``
 (every cell) and ``retrieval/n_items``.
@@ -71,6 +72,11 @@ def summarize(items: Sequence[dict], results: Sequence[Sequence[bool]]) -> dict[
         spans_total += len(res)
     out = {f"retrieval/{k}": float(np.mean(v)) for k, v in sorted(groups.items())}
     out["retrieval/answer_acc"] = spans_right / spans_total
+    # what copying the value of a random fact in the context (asked, other needle or near miss)
+    # scores: (1 / facts) per asked value, all of them right; needs the items' fact spans
+    if all(it.get("asked_spans") for it in items):
+        out["retrieval/copy_level"] = float(np.mean([
+            (1.0 / (len(it["asked_spans"]) + len(it.get("distractor_spans", [])))) ** len(it["answer_spans"]) for it in items]))
     out["retrieval/n_items"] = float(len(items))
     return out
 

@@ -13,12 +13,12 @@ and the order spread ``classification/order_std_<kind>`` and ``classification/or
 the sample standard deviation (ddof=1) and the best minus the worst item accuracy over its
 orderings of that kind; the key is the mean over episodes. A kind with fewer than two orderings in
 every episode has no spread and its keys are left out. ``classification/copy_level`` is what
-copying the label of a random class of the episode scores (1 / C per query).
+the better of two query-blind guesses scores (the episode's most frequent label, or its last one).
 """
 
 from __future__ import annotations
 
-from collections import defaultdict
+from collections import Counter, defaultdict
 from typing import Sequence
 
 import numpy as np
@@ -37,6 +37,27 @@ def order_spread(accuracies: Sequence[float]) -> tuple[float, float]:
     if a.size < 2:
         raise ValueError(f"order_spread: needs at least two orderings, got {a.size}")
     return float(a.std(ddof=1)), float(a.max() - a.min())
+
+
+def context_only_level(items: Sequence[dict]) -> float | None:
+    """What the better of two guesses that ignore the query scores over all queries: the episode's
+    most frequent demonstration label (ties shared), or its last one. A model above this level
+    reads the sighting-to-label mapping; one at it may only count or repeat labels. None when the
+    items do not record ``demo_label_spans``."""
+    if not all(it.get("demo_label_spans") for it in items):
+        return None
+    majority, last = [], []
+    for it in items:
+        tokens = list(it["tokens"])
+        labels = [tuple(tokens[s:e]) for s, e in it["demo_label_spans"]]
+        counts = Counter(labels)
+        top = max(counts.values())
+        best = {label for label, n in counts.items() if n == top}
+        for s, e in it["answer_spans"]:
+            answer = tuple(tokens[s:e])
+            majority.append((answer in best) / len(best))
+            last.append(float(answer == labels[-1]))
+    return float(max(np.mean(majority), np.mean(last)))
 
 
 def summarize(items: Sequence[dict], results: Sequence[Sequence[bool]]) -> dict[str, float]:
@@ -73,9 +94,9 @@ def summarize(items: Sequence[dict], results: Sequence[Sequence[bool]]) -> dict[
         base = f"classification/{prefix}/" if prefix else "classification/"
         out[f"{base}order_std_{kind}"] = float(np.mean([v[0] for v in values]))
         out[f"{base}order_range_{kind}"] = float(np.mean([v[1] for v in values]))
-    # what copying the label of a random class seen in the episode scores: 1 / n_classes per query
-    out["classification/copy_level"] = float(np.mean([1.0 / int(it["meta"]["n_classes"])
-                                                      for it, res in zip(items, results) for _ in res]))
+    level = context_only_level(items)
+    if level is not None:
+        out["classification/copy_level"] = level
     out["classification/n_items"] = float(len(items))
     return out
 

@@ -136,6 +136,13 @@ def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> dict:
         "error": f"{type(exc).__name__}: {exc}".splitlines()[0],
         "probes": {},
     }
+    earlier = records.read_json(run_dir / records.SUMMARY)
+    if earlier and earlier.get("status") != "failed":
+        # e.g. a grid relaunched after its recipe changed: the earlier result stays, under another name
+        kept = run_dir / f"summary.{earlier.get('fingerprint') or 'earlier'}.json"
+        (run_dir / records.SUMMARY).replace(kept)
+        print(f"run {run_dir.name}: its earlier {earlier.get('status')} summary was kept as {kept.name}",
+              file=sys.stderr, flush=True)
     records.write_json(run_dir / records.SUMMARY, summary)
     print(f"run {run_dir.name} failed: {summary['error']}", file=sys.stderr, flush=True)
     return summary

@@ -387,3 +387,22 @@ def test_saved_weights_of_another_model_are_refused_before_loading():
         check_fits(model, wider.state_dict(), Path("wide.pt"))
     with pytest.raises(CheckpointError, match=r"1 tensors missing, 0 unexpected"):
         check_fits(model, {"0.weight": model[0].weight}, Path("short.pt"))
+
+
+def test_a_failure_keeps_the_folders_earlier_result(tmp_path):
+    """A grid relaunched after its recipe changed refuses the old checkpoint and records a
+    failure; the folder's earlier completed summary is kept under another name, not overwritten."""
+    from types import SimpleNamespace
+
+    from ablate import records
+    from ablate.train import _record_failure
+
+    earlier = {"status": "completed", "fingerprint": "abc123", "final_val_loss": 2.6}
+    records.write_json(tmp_path / records.SUMMARY, earlier)
+    info = SimpleNamespace(choices={"attention": "standard"}, cell="attention=standard")
+    failed = _record_failure(tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("written by another config"))
+    assert records.read_json(tmp_path / "summary.abc123.json") == earlier
+    assert records.read_json(tmp_path / records.SUMMARY) == failed and failed["status"] == "failed"
+    # a second failure replaces the first failure only: nothing else to keep
+    _record_failure(tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("again"))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["summary.abc123.json", "summary.json"]

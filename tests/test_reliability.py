@@ -20,7 +20,9 @@ import torch
 from trainer_helpers import ROOT, SMALL_DATA, run_dirs, scalars, summary, train
 
 SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA, "runtime.threads=1"]
-RESUMABLE = [*SMOKE, "budget.checkpoint_every_tokens=2048"]  # 16 steps of 1024 tokens, a checkpoint every 2
+# 48 steps of 1024 tokens, a checkpoint every 2: long enough that on a loaded machine, where the
+# test notices a checkpoint late, the resumed run is still training when the SIGINT arrives
+RESUMABLE = [*SMOKE, "budget.tokens=49152", "budget.checkpoint_every_tokens=2048"]
 # AdamW at this lr gives a non-finite loss at step 2 of the smoke run (seen, not assumed); written
 # the way Hydra's sweeper writes it, so the single run and the grid cell share a run folder.
 DIVERGING_LR = "1000.0"

@@ -771,12 +771,13 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     md += metric_table([r for r in rows if r.metric == LOSS])
     probe_rows = [r for r in rows if r.metric != LOSS]
     md += ["", "## Probes", ""]
-    md += metric_table(probe_rows, with_metric=True) if probe_rows else ["No probe numbers in summary.json."]
     levels = copy_levels(runs)
     if levels:
-        md += ["", "Copy levels: what a guess that ignores the question scores on the probe set: copying a random "
+        md += ["Copy levels: what a guess that ignores the question scores on the probe set: copying a random "
                "fact's value (retrieval); the episode's most frequent or last label, whichever scores better "
-               "(classification). An accuracy at or near its level shows no recall. " + "; ".join(f"`{name}/acc` {value:.3f}" for name, value in sorted(levels.items())) + "."]
+               "(classification). An accuracy at or near its level shows no recall. "
+               + "; ".join(f"`{name}/acc` {value:.3f}" for name, value in sorted(levels.items())) + ".", ""]
+    md += metric_table(probe_rows, with_metric=True) if probe_rows else ["No probe numbers in summary.json."]
     md += ["", "## How many seeds are enough", ""]
     loss_comparisons = [r for r in rows if r.metric == LOSS and r.cell != r.reference]
     md += [f"- {seeds_sentence(r, halfwidth, ' nats')}" for r in loss_comparisons] or ["- Only one cell: nothing to compare."]

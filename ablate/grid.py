@@ -167,14 +167,19 @@ def fairness_table(cells: list[Cell], baseline: str) -> list[dict]:
     return rows
 
 
-def differing_keys(a: list[str], b: list[str]) -> set[str]:
-    da = dict(o.split("=", 1) for o in a if "=" in o)
-    db = dict(o.split("=", 1) for o in b if "=" in o)
-    return {k for k in set(da) | set(db) if da.get(k) != db.get(k) and k not in NOT_DESIGN}
+def override_dict(overrides: list[str]) -> dict[str, str]:
+    """``key -> value`` of the ``key=value`` overrides (deletions and the like are left out)."""
+    return dict(o.split("=", 1) for o in overrides if "=" in o)
 
 
 def _as_dict(overrides: list[str]) -> dict:
-    return {k: v for k, v in (o.split("=", 1) for o in overrides if "=" in o) if k not in NOT_DESIGN}
+    """The design part of ``override_dict``: without seed, recipe and run_root."""
+    return {k: v for k, v in override_dict(overrides).items() if k not in NOT_DESIGN}
+
+
+def differing_keys(a: list[str], b: list[str]) -> set[str]:
+    da, db = _as_dict(a), _as_dict(b)
+    return {k for k in set(da) | set(db) if da.get(k) != db.get(k)}
 
 
 def matched_reference(cell: Cell, base: Cell, cells: list[Cell], unequal_axes: list[str]) -> Cell | None:

@@ -37,7 +37,7 @@ def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
 
 def preflight(argv: list[str]) -> dict | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
-    from .grid import check_cells, check_fairness, compose_checked, expand_jobs, find_baseline
+    from .grid import check_cells, check_fairness, compose_checked, expand_jobs, find_baseline, override_dict
 
     multirun, design, _ = _split_argv(argv)
     if not multirun:
@@ -48,8 +48,8 @@ def preflight(argv: list[str]) -> dict | None:
     grid = base.grid
     baseline = find_baseline(cells, grid.baseline).name
     rows = check_fairness(cells, baseline, grid.tolerance, list(grid.unequal_axes))
-    varied = sorted({o.split("=", 1)[0] for c in cells for o in c.overrides
-                     if len({dict(x.split("=", 1) for x in cc.overrides if "=" in x).get(o.split("=", 1)[0]) for cc in cells}) > 1})
+    settings = [override_dict(c.overrides) for c in cells]
+    varied = sorted({k for d in settings for k in d if len({other.get(k) for other in settings}) > 1})
     from omegaconf import OmegaConf
 
     sweep_dir = Path(base.hydra.sweep.dir)  # OmegaConf resolves ${run_root}/${grid.name} itself
@@ -63,7 +63,7 @@ def preflight(argv: list[str]) -> dict | None:
         "target_halfwidth": grid.target_halfwidth,
         "sweep": OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None,
         "jobs": len(jobs),
-        "seeds": sorted({int(dict(o.split("=", 1) for o in j if "=" in o).get("seed", base.seed)) for j in jobs}),
+        "seeds": sorted({int(override_dict(j).get("seed", base.seed)) for j in jobs}),
         "fairness": rows,
         "dir": str(sweep_dir),
     }

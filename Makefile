@@ -23,9 +23,9 @@ RECIPE ?= quickstart
 
 # The quickstart grid, then its report; ends with the tensorboard command to view the curves.
 demo: $(STAMP)
-	$(BIN)/ablate-corpus
-	$(BIN)/ablate-train -m recipe=$(RECIPE)
-	$(BIN)/ablate-report runs/$(RECIPE)
+	$(BIN)/h2h-corpus
+	$(BIN)/h2h-train -m recipe=$(RECIPE)
+	$(BIN)/h2h-report runs/$(RECIPE)
 	@echo ""
 	@echo "curves: $(BIN)/tensorboard --logdir runs/$(RECIPE)"
 

@@ -1,7 +1,7 @@
-"""``ablate-bench``: training-step speed of attention choices, measured side by side in one process.
+"""``h2h-bench``: training-step speed of attention choices, measured side by side in one process.
 
 For one model size and several attention choices, the bench builds each model exactly as
-``ablate-train`` does, warms each up, then runs timed training steps in rounds: every round times
+``h2h-train`` does, warms each up, then runs timed training steps in rounds: every round times
 one step of every choice, and one float32 matrix product of each reference shape, in turn. Machine
 noise therefore lands on all of them alike, and the ratios between them are what to read.
 
@@ -291,7 +291,7 @@ def format_table(result: dict) -> str:
 
 
 def parse_args(argv=None):
-    parser = argparse.ArgumentParser(prog="ablate-bench", description=__doc__.split("\n\n")[0])
+    parser = argparse.ArgumentParser(prog="h2h-bench", description=__doc__.split("\n\n")[0])
     parser.add_argument("--model", default="tiny", help="model config under conf/model (default: tiny)")
     parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE", help="extra Hydra override (repeatable)")
     parser.add_argument("--attention", default=None, help="comma-separated choices (default: every one under conf/attention)")
@@ -341,7 +341,7 @@ def run(args) -> dict:
             c.warmup_seconds.append(c.step()[0])
     can_reset = _reset_peak_rss()
     if not can_reset:
-        print("ablate-bench: /proc/self/clear_refs is not available; memory is the process-wide getrusage max RSS", file=sys.stderr)
+        print("h2h-bench: /proc/self/clear_refs is not available; memory is the process-wide getrusage max RSS", file=sys.stderr)
     for c in contenders:
         c.memory = measure_memory(c, can_reset)
     for _ in range(args.steps):
@@ -353,7 +353,7 @@ def run(args) -> dict:
             probe.run()
     for c in contenders:
         if not all(math.isfinite(x) for x in c.losses):
-            raise SystemExit(f"ablate-bench: {c.name} produced a non-finite loss; its timings are not meaningful")
+            raise SystemExit(f"h2h-bench: {c.name} produced a non-finite loss; its timings are not meaningful")
     return summarise(contenders, probes, args, tokens_per_step)
 
 
@@ -365,7 +365,7 @@ def main(argv=None) -> int:
     try:
         result = run(args)
     except (HydraException, OmegaConfBaseException) as err:
-        print(f"ablate-bench: bad --override: {str(err).splitlines()[0]}", file=sys.stderr)
+        print(f"h2h-bench: bad --override: {str(err).splitlines()[0]}", file=sys.stderr)
         return 2
     print(format_table(result))
     if args.json is not None:

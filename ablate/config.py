@@ -32,7 +32,7 @@ _register_schema()
 
 
 def compose(overrides: list[str] | None = None, config_name: str = "config", return_hydra_config: bool = False):
-    """The config ``ablate-train`` would see for these overrides (no run folder, no logging)."""
+    """The config ``h2h-train`` would see for these overrides (no run folder, no logging)."""
     from hydra import compose as hydra_compose
     from hydra import initialize_config_dir
     from hydra.core.global_hydra import GlobalHydra

@@ -37,7 +37,7 @@ def cell_name(overrides: list[str]) -> str:
 
 
 def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
-    """Every job's override list for ``ablate-train -m <overrides>``, recipe sweeps included."""
+    """Every job's override list for ``h2h-train -m <overrides>``, recipe sweeps included."""
     from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
     from hydra.core.override_parser.overrides_parser import OverridesParser
 

@@ -121,7 +121,7 @@ def load_checkpoint(path: Path, fingerprint: str) -> dict:
             "delete it to start the run afresh"
         ) from None
     if not isinstance(state, dict) or not {"fingerprint", "step", "model", "optimizer"} <= set(state):
-        raise CheckpointError(f"checkpoint {path} is not an ablate checkpoint and was not loaded; delete it to start afresh")
+        raise CheckpointError(f"checkpoint {path} is not a headtohead checkpoint and was not loaded; delete it to start afresh")
     if state["fingerprint"] != fingerprint:
         raise CheckpointError(
             f"checkpoint {path} was written by another config (fingerprint {state['fingerprint']}, "
@@ -157,7 +157,7 @@ def git_dirty() -> bool | None:
 
 def environment(device: str) -> dict:
     return {
-        "ablate_version": ablate.__version__,
+        "headtohead_version": ablate.__version__,
         "git_commit": git_commit(),
         "git_dirty": git_dirty(),
         "torch_version": torch.__version__,

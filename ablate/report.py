@@ -1,8 +1,8 @@
-"""ablate-report: compare the cells of a grid folder over seeds.
+"""h2h-report: compare the cells of a grid folder over seeds.
 
 Usage::
 
-    ablate-report GRID_FOLDER [--target-halfwidth W] [--resamples N] [--bootstrap-seed S]
+    h2h-report GRID_FOLDER [--target-halfwidth W] [--resamples N] [--bootstrap-seed S]
 
 Every ``summary.json`` below GRID_FOLDER (any depth) is one run; its folder also holds
 ``config.yaml`` and TensorBoard event files (read with TensorBoard's own EventAccumulator).
@@ -737,7 +737,7 @@ def build_report(grid: Path, halfwidth: float | None, resamples: int, boot_seed:
     n_by_status = defaultdict(int)
     for run in runs:
         n_by_status["averaged" if run.usable else run.status] += 1
-    md = [f"# Ablation report: {grid.name}", ""]
+    md = [f"# headtohead report: {grid.name}", ""]
     md.append(f"- Grid folder: `{grid}`")
     if info.get("recipe"):
         md.append(f"- Recipe: {info['recipe']}")
@@ -855,7 +855,7 @@ def console_table(rows, baseline, how, left, comparisons, grid) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="ablate-report", description="Compare the cells of a grid folder over seeds.")
+    parser = argparse.ArgumentParser(prog="h2h-report", description="Compare the cells of a grid folder over seeds.")
     parser.add_argument("grid", type=Path, help="grid folder holding run folders with summary.json")
     parser.add_argument("--target-halfwidth", type=float, default=None,
                         help="95%% half-width to plan seeds for (default: grid.json, else 0.01 nats)")
@@ -863,12 +863,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--bootstrap-seed", type=int, default=0, help="seed of the bootstrap resampling")
     args = parser.parse_args(argv)
     if args.resamples < 1:
-        print(f"ablate-report: --resamples must be at least 1, got {args.resamples}", file=sys.stderr)
+        print(f"h2h-report: --resamples must be at least 1, got {args.resamples}", file=sys.stderr)
         return 2
     try:
         _, console = build_report(args.grid, args.target_halfwidth, args.resamples, args.bootstrap_seed)
     except ReportError as exc:
-        print(f"ablate-report: {exc}", file=sys.stderr)
+        print(f"h2h-report: {exc}", file=sys.stderr)
         return 2
     print(console)
     return 0

@@ -342,7 +342,7 @@ def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> d
                         writer.add_scalar("compute/train_flops", tokens * acc.flops_per_token, tokens)
                         for tag, value in lambda_values(model).items():
                             writer.add_scalar(tag, value, tokens)
-                        bar.set_postfix(loss=f"{loss_value:.3f}", tok_s=f"{speed:,.0f}")
+                        bar.set_postfix(loss=f"{loss_value:.3f}")
                         t_window, tokens_window = time.perf_counter(), 0
                     if step % eval_every == 0 or step == total_steps:
                         last_val = evaluate(model, val, batch_size)

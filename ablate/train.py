@@ -1,7 +1,7 @@
-"""``ablate-train``: the Hydra application over conf/.
+"""``h2h-train``: the Hydra application over conf/.
 
-    ablate-train attention=differential attention.head_norm=false seed=3
-    ablate-train -m recipe=quickstart
+    h2h-train attention=differential attention.head_norm=false seed=3
+    h2h-train -m recipe=quickstart
 
 Before Hydra starts any run, :func:`main` composes and validates every job (a bad value stops
 the program with exit code 2 and one line), and for a grid checks parameter fairness against
@@ -100,17 +100,17 @@ def _task_impl(cfg) -> dict | None:
         validate_all(cfg)
         summary = run(cfg, info, parallel_jobs=n_jobs if in_grid else None)
     except Interrupted as exc:
-        print(f"ablate-train: {exc}", file=sys.stderr, flush=True)
+        print(f"h2h-train: {exc}", file=sys.stderr, flush=True)
         sys.exit(130)
     except KeyboardInterrupt:  # Ctrl-C or SIGTERM outside the training loop (corpus build, probes)
-        print(f"ablate-train: interrupted outside the training loop; {run_dir} keeps its last complete "
+        print(f"h2h-train: interrupted outside the training loop; {run_dir} keeps its last complete "
               "checkpoint, if any. Run the same command again to resume.", file=sys.stderr, flush=True)
         sys.exit(130)
     except (ConfigError, records.CheckpointError) as exc:
         if not in_grid:
             with open(run_dir / "train.log", "a") as log:  # the folder keeps the reason
                 log.write(f"error: {exc}\n")
-            print(f"ablate-train: error: {exc}", file=sys.stderr, flush=True)
+            print(f"h2h-train: error: {exc}", file=sys.stderr, flush=True)
             sys.exit(EXIT_CONFIG)
         return _record_failure(run_dir, info, cfg, exc)
     except Exception as exc:
@@ -185,7 +185,7 @@ def main(argv: list[str] | None = None) -> None:
     try:
         _main(argv)
     except KeyboardInterrupt:
-        print("ablate-train: interrupted before training started; nothing was written", file=sys.stderr)
+        print("h2h-train: interrupted before training started; nothing was written", file=sys.stderr)
         sys.exit(130)
 
 
@@ -195,7 +195,7 @@ def _main(argv: list[str] | None = None) -> None:
         try:
             grid = preflight(argv)
         except ConfigError as exc:
-            print(f"ablate-train: error: {exc}", file=sys.stderr)
+            print(f"h2h-train: error: {exc}", file=sys.stderr)
             sys.exit(EXIT_CONFIG)
         if grid is not None:
             from .grid import format_table
@@ -224,7 +224,7 @@ def _grid_epilogue(grid_dir: Path) -> None:
     for status in ("failed", "diverged"):
         for name in statuses.get(status, []):
             print(f"  {status}: {name}")
-    print(f"report:      ablate-report {_rel(grid_dir)}")
+    print(f"report:      h2h-report {_rel(grid_dir)}")
     print(f"curves:      tensorboard --logdir {_rel(grid_dir)}")
 
 

@@ -1,4 +1,4 @@
-"""ablate-bench on a very small model: every number it writes is present and sane."""
+"""h2h-bench on a very small model: every number it writes is present and sane."""
 
 import json
 import math
@@ -90,5 +90,5 @@ def test_bad_options_name_the_option(argv, words, capsys):
 def test_bad_override_is_one_readable_line(capsys):
     assert main(["--attention", "standard", "--override", "model.no_such_key=3", "--steps", "1"]) == 2
     message = capsys.readouterr().err.strip()
-    assert message.startswith("ablate-bench: bad --override:") and "no_such_key" in message
+    assert message.startswith("h2h-bench: bad --override:") and "no_such_key" in message
     assert len(message.splitlines()) == 1

@@ -86,10 +86,10 @@ def test_second_call_loads_from_cache_without_building(tmp_path, monkeypatch):
 
 
 def test_cache_dir_defaults_to_env_var(tmp_path, monkeypatch):
-    monkeypatch.setenv("ABLATE_CACHE", str(tmp_path / "env"))
+    monkeypatch.setenv("HEADTOHEAD_CACHE", str(tmp_path / "env"))
     assert toy_corpus.default_cache_dir() == tmp_path / "env"
-    monkeypatch.delenv("ABLATE_CACHE")
-    assert toy_corpus.default_cache_dir() == Path.home() / ".cache" / "ablate"
+    monkeypatch.delenv("HEADTOHEAD_CACHE")
+    assert toy_corpus.default_cache_dir() == Path.home() / ".cache" / "headtohead"
 
 
 # ----------------------------------------------------------------------------- text and tokenizer

@@ -1,4 +1,4 @@
-"""Grids: the fairness gate, an A/A grid, a smoke grid through ablate-train -m and the report,
+"""Grids: the fairness gate, an A/A grid, a smoke grid through h2h-train -m and the report,
 and relaunching a finished grid."""
 
 import csv
@@ -47,7 +47,7 @@ def report(grid_dir):
 def test_smoke_grid_report_and_relaunch(tmp_path, cache):
     proc = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
     assert proc.returncode == 0, proc.stderr[-3000:]
-    assert "ablate-report" in proc.stdout and "tensorboard --logdir" in proc.stdout
+    assert "h2h-report" in proc.stdout and "tensorboard --logdir" in proc.stdout
     grid_dir = tmp_path / "quickstart"
     runs = run_dirs(grid_dir)
     assert len(runs) == 4 and all(summary(r)["status"] == "completed" for r in runs)

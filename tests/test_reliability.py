@@ -1,6 +1,6 @@
 """Faults a run must survive: divergence, kills, Ctrl-C/SIGTERM, bad checkpoints, bad inputs.
 
-The end-to-end tests run the real ``ablate-train`` in a subprocess at the smoke budget on the
+The end-to-end tests run the real ``h2h-train`` in a subprocess at the smoke budget on the
 small test corpus, with one torch thread (two threads on two shared cores run several times
 slower) and a checkpoint every 2 steps, so a signal always lands between checkpoints.
 """
@@ -30,8 +30,8 @@ REFERENCE = [*RESUMABLE, "optim.lr=0.002"]
 
 
 def start_train(args, run_root, cache):
-    """``ablate-train`` in the background, as trainer_helpers.train runs it."""
-    env = dict(os.environ, ABLATE_CACHE=str(cache), PYTHONHASHSEED="0")
+    """``h2h-train`` in the background, as trainer_helpers.train runs it."""
+    env = dict(os.environ, HEADTOHEAD_CACHE=str(cache), PYTHONHASHSEED="0")
     cmd = [sys.executable, "-m", "ablate.train", f"run_root={run_root}", "runtime.progress=false", *args]
     # The run keeps an ignored SIGINT ignored (as under nohup); a suite started as a background job
     # passes SIGINT on ignored, so give the child the default disposition a terminal would.
@@ -183,7 +183,7 @@ def assert_refused(proc, run_dir, checkpoint_bytes, words):
     assert all(w in lines[0] for w in words), lines[0]
     assert (run_dir / "checkpoint.pt").read_bytes() == checkpoint_bytes  # left as found
     assert not (run_dir / "summary.json").exists()
-    assert lines[0].removeprefix("ablate-train: ") in (run_dir / "train.log").read_text()
+    assert lines[0].removeprefix("h2h-train: ") in (run_dir / "train.log").read_text()
 
 
 def test_truncated_checkpoint_is_refused_in_one_line(tmp_path, cache, reference):
@@ -291,7 +291,7 @@ def test_summary_records_versions_commit_and_tree_state(reference):
     import ablate
 
     env = summary(reference)["environment"]
-    assert env["ablate_version"] == ablate.__version__
+    assert env["headtohead_version"] == ablate.__version__
     assert env["torch_version"] == torch.__version__ and env["python_version"] == platform.python_version()
     assert env["threads"] == 1 and env["device"] == "cpu"  # runtime.threads=1 was asked for
     if (ROOT / ".git").exists():
@@ -364,7 +364,7 @@ def test_load_checkpoint_refuses_files_that_are_not_ours(tmp_path):
 
     plain = tmp_path / "plain.pt"
     torch.save({"weights": torch.zeros(2)}, plain)
-    with pytest.raises(CheckpointError, match="not an ablate checkpoint"):
+    with pytest.raises(CheckpointError, match="not a headtohead checkpoint"):
         load_checkpoint(plain, "0" * 16)
     # weights_only=True refuses pickled objects other than tensors and plain containers
     # (torch.load docs, "weights_only"); such a file is refused, never unpickled

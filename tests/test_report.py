@@ -1,4 +1,4 @@
-"""ablate-report on hand-made run folders (summary.json + TensorBoard event files written here).
+"""h2h-report on hand-made run folders (summary.json + TensorBoard event files written here).
 
 Expected numbers come from scipy.stats (t.interval, ttest_rel), not from the report's own code.
 """

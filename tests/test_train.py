@@ -1,4 +1,4 @@
-"""End-to-end: ablate-train runs, records, TensorBoard curves, resume and determinism."""
+"""End-to-end: h2h-train runs, records, TensorBoard curves, resume and determinism."""
 
 import math
 

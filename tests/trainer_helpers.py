@@ -1,4 +1,4 @@
-"""Running the real ablate-train command in a subprocess, as a user would."""
+"""Running the real h2h-train command in a subprocess, as a user would."""
 
 import json
 import os
@@ -13,7 +13,7 @@ SMALL_DATA = ["data.n_documents=3000", "data.tokenizer.train_documents=1500"]
 
 
 def train(args, run_root, cache, timeout=600, extra_env=None):
-    env = dict(os.environ, ABLATE_CACHE=str(cache), PYTHONHASHSEED="0")
+    env = dict(os.environ, HEADTOHEAD_CACHE=str(cache), PYTHONHASHSEED="0")
     env.update(extra_env or {})
     # One torch thread: on a shared or busy machine, two threads per run can be several times slower.
     cmd = [sys.executable, "-m", "ablate.train", f"run_root={run_root}", "runtime.progress=false", "runtime.threads=1", *args]

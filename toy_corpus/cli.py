@@ -1,6 +1,6 @@
-"""``ablate-corpus``: build (or find) the toy corpus for a data config and show what is in it.
+"""``h2h-corpus``: build (or find) the toy corpus for a data config and show what is in it.
 
-    ablate-corpus [--config conf/data/toy.yaml] [--seq-len 256] [--cache-dir DIR] [key=value ...]
+    h2h-corpus [--config conf/data/toy.yaml] [--seq-len 256] [--cache-dir DIR] [key=value ...]
 
 Overrides use dotted keys of the data config, e.g. ``vocab_size=512 mixture.facts=0.6``.
 """
@@ -28,10 +28,10 @@ def _show_item(corpus, item: dict, spans: tuple[str, ...]) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="ablate-corpus", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="h2h-corpus", description=__doc__.splitlines()[0])
     parser.add_argument("--config", default=str(DEFAULT_CONFIG), help="data config YAML (default: %(default)s)")
     parser.add_argument("--seq-len", type=int, default=256, help="model window the probes must fit (default: 256)")
-    parser.add_argument("--cache-dir", default=None, help="cache folder (default: $ABLATE_CACHE or ~/.cache/ablate)")
+    parser.add_argument("--cache-dir", default=None, help="cache folder (default: $HEADTOHEAD_CACHE or ~/.cache/headtohead)")
     parser.add_argument("overrides", nargs="*", help="key=value overrides of the data config")
     args = parser.parse_args(argv)
     try:
@@ -45,7 +45,7 @@ def main(argv: list[str] | None = None) -> int:
         corpus = get_corpus(data, args.seq_len, args.cache_dir)
         seconds = time.perf_counter() - t0
     except (ValueError, FileNotFoundError) as err:
-        print(f"ablate-corpus: error: {err}", file=sys.stderr)
+        print(f"h2h-corpus: error: {err}", file=sys.stderr)
         return 2
     s = corpus.stats
     print(f"corpus: {corpus.cache_path}  (ready in {seconds:.2f} s; first build took {s['build_seconds']['total']:.1f} s)")

@@ -27,11 +27,11 @@ from .probes import classification_set, retrieval_set
 from .tokenizer import DOC_START_ID, load_tokenizer, train_tokenizer
 from .world import build_world
 
-GENERATOR_VERSION = 1  # bump when generated text changes for the same config
+GENERATOR_VERSION = 2  # bump when generated text changes for the same config (2: names in common use are redrawn)
 
 
 def default_cache_dir() -> Path:
-    return Path(os.environ.get("ABLATE_CACHE") or Path.home() / ".cache" / "ablate")
+    return Path(os.environ.get("HEADTOHEAD_CACHE") or Path.home() / ".cache" / "headtohead")
 
 
 def cache_key(data_cfg: Mapping) -> str:

@@ -2,13 +2,23 @@
 
 Everything here is a pure function of the data seed. Names are made by joining syllables drawn
 by a seeded generator; isles come in pairs of look-alike names (same first syllable, different
-ending) so that near-miss distractors exist.
+ending) so that near-miss distractors exist. A drawn name that is a word or name in use in any of
+:data:`NAME_LANGUAGES` (listed by the wordfreq library's large word lists at a frequency of at
+least :data:`COMMON_ZIPF` on the Zipf scale) is thrown away and drawn again, so the world's names
+are its own.
 """
 
 from __future__ import annotations
 
+import functools
 import random
 from dataclasses import dataclass, field
+
+# Languages whose words and names the invented names must avoid, and the frequency (Zipf scale:
+# log10 of occurrences per billion words) from which a word counts as in use. 1.0 is the floor of
+# wordfreq's large lists (about once in 100 million words): any word they list is rejected.
+NAME_LANGUAGES = ("en", "de", "fr", "es", "it", "nl", "sv", "fi", "pl")
+COMMON_ZIPF = 1.0
 
 ONSETS = ["b", "d", "f", "g", "h", "k", "l", "m", "n", "p", "r", "s", "t", "v", "z", "br", "dr", "gr", "kr", "st", "th", "sk"]
 VOWELS = ["a", "e", "i", "o", "u", "ae", "ou"]
@@ -29,7 +39,6 @@ GOODS = ["oil", "bread", "coal", "water", "salt", "flour", "candles", "wicks", "
 UNITS = ["casks", "sacks", "crates", "barrels", "bundles", "tins", "boxes"]
 COUNT_WORDS = ["two", "three", "four", "five", "six", "seven", "eight", "nine", "ten", "twelve"]
 TIMES = ["dawn", "noon", "dusk", "midnight", "first light", "the morning watch", "the evening watch"]
-CONNECT = ["then", "later", "at", "before", "after", "by", "toward", "during"]
 MOOD = ["all well", "nothing to report", "quiet night", "lamp burning clear", "glass steady", "keeper weary", "gulls loud", "ice on the gallery"]
 
 FUNCTION_WORDS = ["the", "of", "and", "at", "to", "from", "with", "on", "in", "by"]
@@ -40,6 +49,14 @@ SIGHTINGS = ["gull", "seal", "whale", "tern", "otter", "heron", "puffin", "dolph
              "cormorant", "shark", "plover", "walrus", "kittiwake", "porpoise", "skua", "gannet", "petrel", "turtle"]
 # Noise features of a classification report: (feature word, its values).
 REPORT_FEATURES = [("sea", SEA_STATE), ("sky", WEATHER_SKY), ("wind", WEATHER_WIND), ("tide", ["high", "low", "ebbing", "flooding", "slack"])]
+
+
+@functools.lru_cache(maxsize=None)
+def is_common_word(name: str) -> bool:
+    """True when ``name`` is a word or name in use in one of :data:`NAME_LANGUAGES`."""
+    from wordfreq import zipf_frequency
+
+    return any(zipf_frequency(name, lang, wordlist="large") >= COMMON_ZIPF for lang in NAME_LANGUAGES)
 
 
 def _syllable(rng: random.Random, coda: bool) -> str:
@@ -63,6 +80,7 @@ class World:
     filler_words: list[str] = field(default_factory=list)
 
 
+@functools.lru_cache(maxsize=8)
 def build_world(seed: int, n_isle_pairs: int, n_keepers: int, n_ships: int, n_labels: int) -> World:
     """Draw all names of the world from ``seed``. Every name is unique across categories.
 
@@ -76,7 +94,7 @@ def build_world(seed: int, n_isle_pairs: int, n_keepers: int, n_ships: int, n_la
     def fresh(make) -> str:
         for _ in range(10_000):
             name = make()
-            if name.lower() not in used and name.lower() not in reserved:
+            if name.lower() not in used and name.lower() not in reserved and not is_common_word(name):
                 used.add(name.lower())
                 return name
         raise RuntimeError("could not draw a fresh name; too many names requested for the syllable set")

@@ -1,7 +1,15 @@
-"""What a run leaves on disk: atomic JSON and checkpoint writes, checkpoint checks, versions."""
+"""What a run and a grid leave on disk: the record types (:class:`RunSummary`, :class:`GridRecord`),
+atomic JSON and checkpoint writes, checkpoint checks, versions.
+
+A run folder holds ``config.yaml``, ``summary.json`` (:class:`RunSummary`), ``train.log``,
+TensorBoard event files and ``checkpoint.pt``; a grid folder holds ``grid.json``
+(:class:`GridRecord`) and one run folder per job. Every reader and writer of those files uses the
+names and types below.
+"""
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import os
@@ -9,6 +17,7 @@ import pickle
 import platform
 import subprocess
 import tempfile
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
@@ -17,7 +26,123 @@ import ablate
 
 CHECKPOINT = "checkpoint.pt"
 SUMMARY = "summary.json"
+GRID = "grid.json"
+CONFIG = "config.yaml"
+LOG = "train.log"
 TEMP_SUFFIX = ".partial"
+STATUSES = ("running", "completed", "failed", "diverged", "stopped")
+
+
+@dataclass
+class RunSummary:
+    """``summary.json``: what one run did and how it ended.
+
+    ``status`` is ``completed``, ``failed``, ``diverged`` or ``stopped`` (stopped early on request,
+    never written to disk). ``probes`` is a flat ``name -> number`` dict. Fields a run did not reach
+    stay ``None`` (a failed run has no losses). Unknown keys of an older or hand-written file are
+    kept in ``extra`` and written back unchanged.
+    """
+
+    status: str
+    attention: str | None = None
+    seed: int | None = None
+    cell: str | None = None
+    choices: dict = field(default_factory=dict)
+    overrides: list = field(default_factory=list)
+    data_kind: str | None = None
+    params: int | None = None
+    non_embedding_params: int | None = None
+    flops_per_token: float | None = None
+    budget_match: str | None = None
+    total_steps: int | None = None
+    tokens_per_step: int | None = None
+    step: int | None = None
+    tokens: int | None = None
+    train_flops: float | None = None
+    final_train_loss: float | None = None
+    final_val_loss: float | None = None
+    wall_seconds: float | None = None
+    compiled: bool | None = None
+    fingerprint: str | None = None
+    environment: dict = field(default_factory=dict)
+    probes: dict = field(default_factory=dict)
+    error: str | None = None
+    diverged_at_step: int | None = None
+    diverged_at_tokens: int | None = None
+    diverged_on: str | None = None
+    diverged_loss: float | str | None = None
+    diverged_grad_norm: float | str | None = None
+    last_finite_loss: float | None = None
+    extra: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name != "extra"}
+        return {**self.extra, **out}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "RunSummary":
+        names = {f.name for f in dataclasses.fields(cls)} - {"extra"}
+        known = {k: v for k, v in data.items() if k in names}
+        known.setdefault("status", "missing")
+        return cls(**known, extra={k: v for k, v in data.items() if k not in names})
+
+
+@dataclass
+class GridRecord:
+    """``grid.json``: what a grid launch asked for, written by the pre-flight before any run.
+
+    ``baseline`` is the cell every comparison is made against; ``primary_metric`` is the one number
+    the verdict is about and ``resolution`` the interval half-width (in its units) that counts as
+    resolved; ``max_seeds`` caps the seed rounds (``rounds`` ran so far). ``fairness`` holds one row
+    per cell (parameters and FLOPs against the baseline).
+    """
+
+    name: str
+    dir: str
+    baseline: str
+    recipe: str | None = None
+    primary_metric: str = "final_val_loss"
+    resolution: float = 0.01
+    max_seeds: int | None = None
+    rounds: int = 1
+    varied: list = field(default_factory=list)
+    unequal_axes: list = field(default_factory=list)
+    tolerance: float = 0.02
+    sweep: dict | None = None
+    jobs: int = 0
+    seeds: list = field(default_factory=list)
+    fairness: list = field(default_factory=list)
+    running_elsewhere: list = field(default_factory=list)
+    extra: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name != "extra"}
+        return {**self.extra, **out}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "GridRecord":
+        names = {f.name for f in dataclasses.fields(cls)} - {"extra"}
+        known = {k: v for k, v in data.items() if k in names}
+        return cls(**known, extra={k: v for k, v in data.items() if k not in names})
+
+
+def read_summary(folder: Path) -> RunSummary | None:
+    """The run folder's summary, or None when it has none (or an unreadable one)."""
+    data = read_json(Path(folder) / SUMMARY)
+    return RunSummary.from_dict(data) if isinstance(data, dict) else None
+
+
+def write_summary(folder: Path, summary: RunSummary) -> None:
+    write_json(Path(folder) / SUMMARY, summary.to_dict())
+
+
+def read_grid(folder: Path) -> GridRecord | None:
+    data = read_json(Path(folder) / GRID)
+    return GridRecord.from_dict(data) if isinstance(data, dict) else None
+
+
+def write_grid(record: GridRecord) -> None:
+    write_json(Path(record.dir) / GRID, record.to_dict())
 
 
 class CheckpointError(RuntimeError):

@@ -9,14 +9,20 @@ names and types below.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
+import datetime
+import errno
+import fcntl
 import hashlib
 import json
 import os
 import pickle
 import platform
+import socket
 import subprocess
 import tempfile
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -29,6 +35,7 @@ SUMMARY = "summary.json"
 GRID = "grid.json"
 CONFIG = "config.yaml"
 LOG = "train.log"
+LOCK = ".lock"
 TEMP_SUFFIX = ".partial"
 STATUSES = ("running", "completed", "failed", "diverged", "stopped")
 
@@ -157,31 +164,167 @@ def _default_mode() -> int:
     return 0o666 & ~umask
 
 
+class WriteError(RuntimeError):
+    """A file that could not be written (disk full, no permission, ...); the message is one line
+    naming the file and the reason, and the file that was there before is left as it was."""
+
+
+def _write_error(path: Path, exc: OSError, existed: bool) -> WriteError:
+    reason = exc.strerror or errno.errorcode.get(exc.errno or 0) or type(exc).__name__
+    after = "the previous file is unchanged" if existed else "no file was written"
+    return WriteError(f"{path}: could not write ({reason}); {after}")
+
+
 def atomic_write_bytes(path: Path, data: bytes) -> None:
     """Write to a temporary file in the same folder, then rename over ``path``: a kill at any
     moment leaves either the old file or the new one, never half of one (``os.replace`` is an
     atomic rename on POSIX, Python docs). A kill can leave the temporary file behind;
-    :func:`remove_stale_temp_files` clears those."""
+    :func:`remove_stale_temp_files` clears those. An ``OSError`` on the way (ENOSPC, EACCES, ...)
+    removes the temporary file and raises :class:`WriteError`; the old file stays whole."""
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=TEMP_SUFFIX)
+    existed = path.exists()
+    tmp = None
     try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=TEMP_SUFFIX)
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
         os.chmod(tmp, _default_mode())
         os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
+    except BaseException as exc:
+        if tmp is not None and os.path.exists(tmp):
             os.unlink(tmp)
+        if isinstance(exc, OSError):
+            raise _write_error(path, exc, existed) from None
         raise
     if os.name == "posix":  # make the rename itself durable (common practice)
-        dir_fd = os.open(path.parent, os.O_RDONLY)
         try:
-            os.fsync(dir_fd)
+            dir_fd = os.open(path.parent, os.O_RDONLY)
+            try:
+                os.fsync(dir_fd)
+            finally:
+                os.close(dir_fd)
+        except OSError as exc:
+            raise WriteError(f"{path}: written, but its folder could not be synced ({exc.strerror}); "
+                             "the new file may not survive a power cut") from None
+
+
+class FolderBusy(RuntimeError):
+    """Another process holds the run folder's lock; the message is one line naming the folder and
+    the holder (pid, host, since)."""
+
+    def __init__(self, folder: Path, holder: dict | None):
+        self.folder, self.holder = Path(folder), holder or {}
+        who = (f"pid {self.holder.get('pid')} on {self.holder.get('host')} since {self.holder.get('since')}"
+               if self.holder.get("pid") is not None else "a process that has not yet written its name")
+        super().__init__(f"{self.folder}: in use by {who}; wait for it to finish or stop that process")
+
+
+def _now_iso() -> str:
+    return datetime.datetime.now().astimezone().isoformat(timespec="seconds")
+
+
+def _read_holder(fd: int) -> dict | None:
+    try:
+        data = json.loads(os.pread(fd, 4096, 0).decode() or "null")
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) else None
+
+
+def _try_lock(fd: int) -> bool:
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        return False
+    return True
+
+
+_HELD: dict[str, tuple[int, int, dict]] = {}  # folder -> (pid, depth, holder) of this process's locks
+
+
+def _open_locked(path: Path, attempts: int) -> int:
+    """An open descriptor of ``path`` holding its lock. After locking, the path must still name
+    the locked file: a holder that was releasing may have removed it meanwhile, and a lock on a
+    removed file guards nothing (then open the new file and try again)."""
+    for _ in range(attempts):
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, _default_mode())
+        try:
+            if not _try_lock(fd):
+                holder = _read_holder(fd)
+                if holder is not None:
+                    raise FolderBusy(path.parent, holder)
+            else:
+                try:
+                    if os.fstat(fd).st_ino == os.stat(path).st_ino:
+                        return fd
+                except FileNotFoundError:
+                    pass
+        except BaseException:
+            os.close(fd)
+            raise
+        os.close(fd)
+        time.sleep(0.01)
+    raise FolderBusy(path.parent, None)
+
+
+@contextlib.contextmanager
+def folder_lock(folder: Path, attempts: int = 50):
+    """Hold ``<folder>/.lock`` (``fcntl.flock`` with ``LOCK_EX | LOCK_NB``, Linux flock(2)) while
+    the block runs; the holder ``{pid, host, since}`` is written into the file as JSON and the
+    file is removed on release.
+
+    The kernel drops the lock when its descriptor is closed, so a SIGKILLed holder leaves at most
+    the file, never a held lock. Raises :class:`FolderBusy` when another process holds it. Nested
+    calls for the same folder in one process share the outer lock. A holder that has locked but
+    not yet written its name (or a :func:`lock_holder` probe) is retried for ``attempts`` x 10 ms.
+    """
+    folder = Path(folder)
+    key = os.path.abspath(folder)
+    held = _HELD.get(key)
+    if held is not None and held[0] == os.getpid():
+        _HELD[key] = (held[0], held[1] + 1, held[2])
+        try:
+            yield held[2]
         finally:
-            os.close(dir_fd)
+            pid, depth, holder = _HELD[key]
+            _HELD[key] = (pid, depth - 1, holder)
+        return
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / LOCK
+    fd = _open_locked(path, attempts)
+    try:
+        holder = {"pid": os.getpid(), "host": socket.gethostname(), "since": _now_iso()}
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, (json.dumps(holder) + "\n").encode(), 0)
+        _HELD[key] = (os.getpid(), 1, holder)
+        try:
+            yield holder
+        finally:
+            _HELD.pop(key, None)
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(path)  # still held here, so no other process has locked this file
+    finally:
+        os.close(fd)  # releases the lock
+
+
+def lock_holder(folder: Path) -> dict | None:
+    """Who holds ``<folder>/.lock`` now (``{pid, host, since}``), or None when nobody does.
+    Probes with a non-blocking lock that it drops at once."""
+    path = Path(folder) / LOCK
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except FileNotFoundError:
+        return None
+    try:
+        if _try_lock(fd):
+            fcntl.flock(fd, fcntl.LOCK_UN)
+            return None
+        return _read_holder(fd) or {"pid": None, "host": None, "since": None}
+    finally:
+        os.close(fd)
 
 
 def remove_stale_temp_files(folder: Path) -> list[Path]:
@@ -211,10 +354,15 @@ def config_fingerprint(resolved: dict) -> str:
 
 
 def save_checkpoint(path: Path, state: dict) -> None:
+    """Serialise in memory, then :func:`atomic_write_bytes`: a full disk raises
+    :class:`WriteError` and leaves the previous checkpoint whole."""
     import io
 
     buffer = io.BytesIO()
-    torch.save(state, buffer)
+    try:
+        torch.save(state, buffer)
+    except OSError as exc:
+        raise _write_error(Path(path), exc, Path(path).exists()) from None
     atomic_write_bytes(path, buffer.getvalue())
 
 

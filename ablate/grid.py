@@ -6,7 +6,9 @@ then composes each job's config with the compose API.
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
+from pathlib import Path
 
 import torch
 from omegaconf import OmegaConf
@@ -58,6 +60,33 @@ def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
     merged = list(overrides) + [f"{k}={v}" for k, v in params.items() if k not in cli_keys]
     jobs = BasicSweeper.split_arguments(parser.parse_overrides(merged), None)[0]
     return jobs, base
+
+
+def output_folder(overrides: list[str], multirun: bool) -> Path:
+    """The folder Hydra will write into for these command-line overrides (``hydra.*`` ones
+    included): ``hydra.sweep.dir`` for ``-m``, else ``hydra.run.dir``.
+
+    Composed with Hydra's compose API (``return_hydra_config=True``) and resolved with the Hydra
+    config set, as Hydra does before launching: a multirun composes without its sweep overrides
+    (Hydra's defaults list skips them), and a relative folder is taken from the current folder
+    (Hydra's run_job takes ``os.path.abspath`` of it).
+    """
+    from hydra.core.hydra_config import HydraConfig
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+
+    from .config import compose
+
+    try:
+        parsed = OverridesParser.create().parse_overrides(overrides)
+        keep = [o.input_line for o in parsed if not (multirun and o.is_sweep_override())]
+        cfg = compose(keep, return_hydra_config=True)
+        HydraConfig.instance().set_config(cfg)
+        folder = OmegaConf.select(cfg, "hydra.sweep.dir" if multirun else "hydra.run.dir")
+    except ConfigError:
+        raise
+    except Exception as exc:
+        raise ConfigError(one_line(exc)) from None
+    return Path(os.path.abspath(str(folder)))
 
 
 def check_cells(jobs: list[list[str]], vocab_size: int = 1024) -> tuple[list[Cell], object]:

@@ -37,11 +37,13 @@ def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
 
 def preflight(argv: list[str]) -> dict | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
-    from .grid import check_cells, check_fairness, compose_checked, expand_jobs, find_baseline, override_dict
+    from .grid import (check_cells, check_fairness, compose_checked, expand_jobs, find_baseline, output_folder,
+                       override_dict)
 
-    multirun, design, _ = _split_argv(argv)
+    multirun, design, hydra_side = _split_argv(argv)
     if not multirun:
         compose_checked(design)
+        _check_free(output_folder(design + hydra_side, multirun=False))
         return None
     jobs, base = expand_jobs(design)
     cells, _ = check_cells(jobs)
@@ -52,7 +54,7 @@ def preflight(argv: list[str]) -> dict | None:
     varied = sorted({k for d in settings for k in d if len({other.get(k) for other in settings}) > 1})
     from omegaconf import OmegaConf
 
-    sweep_dir = Path(base.hydra.sweep.dir)  # OmegaConf resolves ${run_root}/${grid.name} itself
+    sweep_dir = output_folder(design + hydra_side, multirun=True)  # the folder Hydra's launcher will use
     return {
         "recipe": base.hydra.runtime.choices.get("recipe"),
         "name": str(grid.name),
@@ -69,12 +71,33 @@ def preflight(argv: list[str]) -> dict | None:
     }
 
 
+def _check_free(run_dir: Path) -> None:
+    """Exit 2 in one line when another process holds the run folder (checked again, race-free,
+    when the run takes the folder's lock)."""
+    holder = records.lock_holder(run_dir)
+    if holder is not None:
+        print(f"h2h-train: {records.FolderBusy(run_dir, holder)}", file=sys.stderr, flush=True)
+        sys.exit(EXIT_CONFIG)
+
+
+ELSEWHERE = ".running_elsewhere.jsonl"  # grid folder: one line per cell skipped because another process held it
+
+
+def _note_running_elsewhere(grid_dir: Path, exc: records.FolderBusy) -> None:
+    """Append (O_APPEND: one short line per write, safe from parallel jobs) for the epilogue."""
+    import json
+
+    line = json.dumps({"run": exc.folder.name, **exc.holder}) + "\n"
+    with open(grid_dir / ELSEWHERE, "a") as f:
+        f.write(line)
+
+
 def _task_impl(cfg) -> dict | None:
     from hydra.core.hydra_config import HydraConfig
     from hydra.types import RunMode
 
-    from .grid import cell_name, validate_all
-    from .runner import Interrupted, RunInfo, run
+    from .grid import cell_name
+    from .runner import RunInfo
 
     hc = HydraConfig.get()
     in_grid = hc.mode == RunMode.MULTIRUN
@@ -97,6 +120,23 @@ def _task_impl(cfg) -> dict | None:
             sys.exit(1)
         return done
     try:
+        with records.folder_lock(run_dir):
+            return _locked_run(cfg, info, run_dir, in_grid, n_jobs)
+    except records.FolderBusy as exc:
+        if not in_grid:
+            print(f"h2h-train: {exc}", file=sys.stderr, flush=True)
+            sys.exit(EXIT_CONFIG)
+        print(f"skip {run_dir.name}: running elsewhere ({exc})", flush=True)
+        _note_running_elsewhere(Path(os.path.abspath(hc.sweep.dir)), exc)
+        return {"status": "running_elsewhere", **exc.holder}
+
+
+def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> dict | None:
+    """One run, its failure path included, while this process holds the run folder's lock."""
+    from .grid import validate_all
+    from .runner import Interrupted, run
+
+    try:
         validate_all(cfg)
         summary = run(cfg, info, parallel_jobs=n_jobs if in_grid else None)
     except Interrupted as exc:
@@ -106,6 +146,11 @@ def _task_impl(cfg) -> dict | None:
         print(f"h2h-train: interrupted outside the training loop; {run_dir} keeps its last complete "
               "checkpoint, if any. Run the same command again to resume.", file=sys.stderr, flush=True)
         sys.exit(130)
+    except records.WriteError as exc:  # disk full or not writable: the folder keeps its previous files
+        print(f"h2h-train: error: {exc}", file=sys.stderr, flush=True)
+        if not in_grid:
+            sys.exit(1)
+        return {"status": "failed", "error": str(exc)}
     except (ConfigError, records.CheckpointError) as exc:
         if not in_grid:
             with open(run_dir / "train.log", "a") as log:  # the folder keeps the reason
@@ -201,7 +246,8 @@ def _main(argv: list[str] | None = None) -> None:
             from .grid import format_table
 
             Path(grid["dir"]).mkdir(parents=True, exist_ok=True)
-            records.write_json(Path(grid["dir"]) / "grid.json", grid)
+            (Path(grid["dir"]) / ELSEWHERE).unlink(missing_ok=True)  # notes of an earlier launch
+            records.write_json(Path(grid["dir"]) / records.GRID, grid)
             print(f"grid {grid['name']}: {grid['jobs']} runs, baseline {grid['baseline']}, into {grid['dir']}")
             print(format_table(grid["fairness"]), flush=True)
     else:
@@ -214,16 +260,39 @@ def _main(argv: list[str] | None = None) -> None:
         _grid_epilogue(Path(grid["dir"]))
 
 
+def _running_elsewhere(grid_dir: Path) -> list[dict]:
+    """The cells this launch skipped because another process held them (noted by the jobs)."""
+    import json
+
+    notes = grid_dir / ELSEWHERE
+    if not notes.exists():
+        return []
+    rows = [json.loads(ln) for ln in notes.read_text().splitlines() if ln.strip()]
+    return sorted({r["run"]: r for r in rows}.values(), key=lambda r: r["run"])
+
+
 def _grid_epilogue(grid_dir: Path) -> None:
+    """Counts by status of the grid folder Hydra wrote into (the pre-flight's ``grid['dir']``),
+    the failed, diverged and running-elsewhere runs by name, and what to run next. The cells
+    running elsewhere are kept in ``grid.json`` (``GridRecord.running_elsewhere``)."""
     statuses = {}
     for path in sorted(grid_dir.glob("*/summary.json")):
         s = records.read_json(path) or {}
         statuses.setdefault(s.get("status", "unknown"), []).append(path.parent.name)
-    counts = ", ".join(f"{len(v)} {k}" for k, v in sorted(statuses.items()))
-    print(f"\ngrid finished: {counts}")
+    elsewhere = _running_elsewhere(grid_dir)
+    record = records.read_grid(grid_dir)
+    if record is not None and (elsewhere or record.running_elsewhere):
+        record.running_elsewhere = elsewhere
+        records.write_grid(record)
+    (grid_dir / ELSEWHERE).unlink(missing_ok=True)
+    counts = [f"{len(v)} {k}" for k, v in sorted(statuses.items())]
+    counts += [f"{len(elsewhere)} running elsewhere"] if elsewhere else []
+    print(f"\ngrid finished in {grid_dir}: {', '.join(counts) or 'no run summaries'}")
     for status in ("failed", "diverged"):
         for name in statuses.get(status, []):
             print(f"  {status}: {name}")
+    for row in elsewhere:
+        print(f"  running elsewhere: {row['run']} (pid {row.get('pid')} on {row.get('host')} since {row.get('since')})")
     print(f"report:      h2h-report {_rel(grid_dir)}")
     print(f"curves:      tensorboard --logdir {_rel(grid_dir)}")
 

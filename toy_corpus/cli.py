@@ -14,6 +14,7 @@ from pathlib import Path
 
 from omegaconf import OmegaConf
 
+from .cache import MANIFEST, CacheError
 from .corpus import get_corpus
 
 DEFAULT_CONFIG = Path(__file__).resolve().parent.parent / "conf" / "data" / "toy.yaml"
@@ -42,13 +43,14 @@ def main(argv: list[str] | None = None) -> int:
         cfg = OmegaConf.merge(cfg, OmegaConf.from_dotlist(args.overrides))
         data = OmegaConf.to_container(cfg, resolve=True)
         t0 = time.perf_counter()
-        corpus = get_corpus(data, args.seq_len, args.cache_dir)
+        corpus = get_corpus(data, args.seq_len, args.cache_dir, verify=True)  # sizes and SHA-256 of every file
         seconds = time.perf_counter() - t0
-    except (ValueError, FileNotFoundError) as err:
+    except (ValueError, FileNotFoundError, CacheError) as err:
         print(f"h2h-corpus: error: {err}", file=sys.stderr)
         return 2
     s = corpus.stats
     print(f"corpus: {corpus.cache_path}  (ready in {seconds:.2f} s; first build took {s['build_seconds']['total']:.1f} s)")
+    print(f"checked: every file's size and SHA-256 against {MANIFEST}")
     print(f"vocabulary: {corpus.vocab_size} pieces")
     print(f"train: {s['train_documents']} documents, {s['train_tokens']:,} tokens, {s['train_characters']:,} characters")
     print(f"validation: {s['val_documents']} documents, {s['val_tokens']:,} tokens")

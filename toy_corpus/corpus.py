@@ -1,7 +1,11 @@
 """Build (or load from the cache) the corpus for one data config: text, tokenizer, ids, probes.
 
 Cache folder: ``<cache_dir>/toy-<key>`` where key hashes the data config and the generator
-version. A finished folder is never rewritten; it is built in a temporary folder and renamed.
+version. It is built in a temporary folder, its manifest (sizes and SHA-256, ``cache.py``) is
+written last, and the folder is renamed into place, all under a lock on ``toy-<key>.lock``, so
+two processes building the same corpus at once end with one good copy. On load the sizes are
+checked (and the hashes, when asked or when a file fails to load); a folder that fails is
+rebuilt, with one line on stderr naming the file and what was wrong.
 """
 
 from __future__ import annotations
@@ -12,6 +16,7 @@ import json
 import os
 import random
 import shutil
+import sys
 import tempfile
 import time
 from dataclasses import dataclass, field
@@ -21,6 +26,7 @@ from typing import Mapping
 import numpy as np
 import sentencepiece as spm
 
+from .cache import CacheError, build_lock, check_cache, write_manifest
 from .config import check_config
 from .documents import generate_documents
 from .probes import classification_set, retrieval_set
@@ -169,25 +175,67 @@ def _check_probe_lengths(probe_sets: Mapping[str, list[dict]], seq_len: int) -> 
                              f"allowed: items of at most seq_len + 1 tokens")
 
 
-def get_corpus(data_cfg: Mapping, seq_len: int, cache_dir: str | os.PathLike | None = None) -> Corpus:
-    """The corpus for ``data_cfg`` (the plain dict of the data config group), built once and cached."""
+LOAD_ERRORS = (OSError, ValueError, EOFError, RuntimeError, KeyError)  # numpy, json, sentencepiece on damaged files
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return f"{type(exc).__name__}: {text[0][:120]}" if text else type(exc).__name__
+
+
+def _checked_load(path: Path, cfg: dict, hashes: bool) -> tuple[Corpus | None, str | None]:
+    """(corpus, None) when the folder passes its check and loads; else (None, what is wrong).
+    A file that fails to load although its size is right is named by the hash check."""
+    problem = check_cache(path, hashes=hashes)
+    if problem is not None:
+        return None, problem
+    try:
+        return _load(path, cfg), None
+    except LOAD_ERRORS as exc:
+        return None, check_cache(path, hashes=True) or f"a file could not be loaded ({_first_line(exc)})"
+
+
+def _build_into_place(cfg: dict, seq_len: int, root: Path, path: Path) -> None:
+    """Build into a temporary folder, write the manifest last, and rename it over ``path`` (a
+    damaged folder is moved aside first and removed). The caller holds the build lock."""
+    for stale in root.glob(f"{path.name}.building-*"):  # left by a killed build of this key
+        shutil.rmtree(stale, ignore_errors=True)
+    tmp = Path(tempfile.mkdtemp(prefix=path.name + ".building-", dir=root))
+    try:
+        build_corpus(cfg, seq_len, tmp, key=path.name)
+        write_manifest(tmp)
+        os.chmod(tmp, 0o755)  # mkdtemp makes it owner-only
+        if path.exists():
+            aside = Path(tempfile.mkdtemp(prefix=path.name + ".building-", dir=root)) / "damaged"
+            os.rename(path, aside)
+        os.replace(tmp, path)
+    except OSError as exc:
+        raise CacheError(f"{root}: could not build the corpus cache ({exc.strerror or _first_line(exc)}); "
+                         "nothing there was replaced") from None
+    finally:
+        for leftover in root.glob(f"{path.name}.building-*"):
+            shutil.rmtree(leftover, ignore_errors=True)
+
+
+def get_corpus(data_cfg: Mapping, seq_len: int, cache_dir: str | os.PathLike | None = None,
+               verify: bool = False) -> Corpus:
+    """The corpus for ``data_cfg`` (the plain dict of the data config group), built once and
+    cached. ``verify`` checks every file's SHA-256 against the manifest (sizes are always checked)."""
     cfg = json.loads(json.dumps(dict(data_cfg)))  # plain, detached copy
     check_config(cfg, seq_len)
     root = Path(cache_dir) if cache_dir is not None else default_cache_dir()
     path = root / f"toy-{cache_key(cfg)}"
-    if not (path / "stats.json").exists():
-        root.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=path.name + ".building-", dir=root))
-        try:
-            build_corpus(cfg, seq_len, tmp, key=path.name)
-            try:
-                os.replace(tmp, path)
-            except OSError:  # another process finished the same build first; theirs is identical
-                if not (path / "stats.json").exists():
-                    raise
-        finally:
-            if tmp.exists():
-                shutil.rmtree(tmp, ignore_errors=True)
-    corpus = _load(path, cfg)
+    corpus, problem = _checked_load(path, cfg, verify) if path.exists() else (None, None)
+    if corpus is None:
+        with build_lock(root / f"{path.name}.lock"):
+            # another process may have built it while this one waited
+            corpus, again = _checked_load(path, cfg, verify) if path.exists() else (None, None)
+            if corpus is None:
+                if path.exists():
+                    print(f"corpus cache {path}: {again or problem}; rebuilding it", file=sys.stderr, flush=True)
+                _build_into_place(cfg, seq_len, root, path)
+                corpus, problem = _checked_load(path, cfg, True)
+                if corpus is None:
+                    raise CacheError(f"corpus cache {path}: {problem} right after it was built")
     _check_probe_lengths(corpus.probe_sets, seq_len)
     return corpus

@@ -38,8 +38,10 @@ def cell_name(overrides: list[str]) -> str:
     return ",".join(sorted(keep)) or "default"
 
 
-def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
-    """Every job's override list for ``h2h-train -m <overrides>``, recipe sweeps included."""
+def expand_jobs(overrides: list[str], hydra_overrides: list[str] = ()) -> tuple[list[list[str]], object]:
+    """Every job's override list for ``h2h-train -m <overrides>``, recipe sweeps included;
+    ``hydra_overrides`` (the command line's ``hydra.*`` ones, e.g. ``hydra.sweeper.params.seed=0``)
+    take part in the compose as they do in Hydra's, but are not job overrides."""
     from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
     from hydra.core.override_parser.overrides_parser import OverridesParser
 
@@ -52,7 +54,7 @@ def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
         raise ConfigError(one_line(exc)) from None
     first = [o.get_key_element() + "=" + (str(list(o.sweep_iterator())[0]) if o.is_sweep_override() else o.get_value_element_as_str()) if not o.is_delete() else o.input_line for o in parsed]
     try:
-        base = compose(first, return_hydra_config=True)
+        base = compose(first + list(hydra_overrides), return_hydra_config=True)
     except Exception as exc:
         raise ConfigError(one_line(exc)) from None
     params = dict(base.hydra.sweeper.params or {})

@@ -45,7 +45,7 @@ def preflight(argv: list[str]) -> dict | None:
         compose_checked(design)
         _check_free(output_folder(design + hydra_side, multirun=False))
         return None
-    jobs, base = expand_jobs(design)
+    jobs, base = expand_jobs(design, hydra_side)
     cells, _ = check_cells(jobs)
     grid = base.grid
     baseline = find_baseline(cells, grid.baseline).name

@@ -5,7 +5,8 @@ A line is ``<ISO 8601 time> <event> key=value key=value ...``::
     2026-12-03T11:40:25.123+00:00 eval step=8 tokens=8192 val_loss=5.4751
 
 A value is written bare when it is a number, a boolean, null or a string without spaces,
-quotes or ``=``; otherwise as a JSON string (dicts and lists as compact JSON), so
+quotes or ``=``; otherwise as a JSON string (dicts and lists as compact JSON; a non-finite
+float as ``NaN`` / ``Infinity``, which Python's json reads back), so
 :func:`read_log` gives back what was written. Each line is opened in append mode, written and
 flushed on its own: a resumed run adds to the same file, and nothing is buffered when a run is
 killed.
@@ -15,6 +16,7 @@ from __future__ import annotations
 
 import datetime
 import json
+import math
 import re
 from pathlib import Path
 
@@ -28,7 +30,7 @@ _FIELD = re.compile(r'([A-Za-z_][A-Za-z0-9_.]*)=("(?:[^"\\]|\\.)*"|\S+)')
 def _value(v) -> str:
     if isinstance(v, str):
         return v if _BARE.match(v) and v not in ("true", "false", "null") and not _is_number(v) else json.dumps(v)
-    if isinstance(v, float):
+    if isinstance(v, float) and math.isfinite(v):
         return repr(v)  # shortest text that reads back as the same float (Python docs, repr)
     return json.dumps(v, separators=(",", ":"), default=str)
 

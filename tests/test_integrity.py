@@ -7,6 +7,7 @@ thread, probes off and a budget of a few steps.
 
 import errno
 import json
+import math
 import os
 import signal
 import subprocess
@@ -296,21 +297,23 @@ def test_runlog_lines_are_timestamped_and_appended_across_two_writers(tmp_path):
     first = RunLog(tmp_path)
     first.line("start", attention="standard", threads=1, device="cpu")
     first.line("eval", step=8, tokens=8192, val_loss=5.475123456789)
+    first.line("diverged", step=9, loss=float("nan"), grad_norm=float("inf"), last_finite_loss=5.4)
     # a second writer in another process, as a resumed run would be
     code = ("import sys; from ablate.runlog import RunLog; "
             "RunLog(sys.argv[1]).line('resume', step=8, note='from the last checkpoint', extra={'a': [1, 2]})")
     subprocess.run([sys.executable, "-c", code, str(tmp_path)], check=True, cwd=ROOT)
     t1 = datetime.datetime.now().astimezone()
     raw = (tmp_path / "train.log").read_text().splitlines()
-    assert len(raw) == 3 and raw[1].split(" ", 1)[1] == "eval step=8 tokens=8192 val_loss=5.475123456789"
+    assert len(raw) == 4 and raw[1].split(" ", 1)[1] == "eval step=8 tokens=8192 val_loss=5.475123456789"
     lines = read_log(tmp_path)
-    assert [ln["event"] for ln in lines] == ["start", "eval", "resume"]
+    assert [ln["event"] for ln in lines] == ["start", "eval", "diverged", "resume"]
     # datetime.fromisoformat (Python docs) reads each stamp as ISO 8601 with a UTC offset
     stamps = [datetime.datetime.fromisoformat(r.split(" ", 1)[0]) for r in raw]
     assert all(s.utcoffset() is not None for s in stamps)
-    assert t0 - datetime.timedelta(seconds=1) <= stamps[0] <= stamps[1] <= stamps[2] <= t1 + datetime.timedelta(seconds=1)
+    assert t0 - datetime.timedelta(seconds=1) <= stamps[0] and stamps == sorted(stamps) and stamps[-1] <= t1 + datetime.timedelta(seconds=1)
     assert lines[1]["val_loss"] == 5.475123456789 and lines[0]["threads"] == 1
-    assert lines[2]["note"] == "from the last checkpoint" and lines[2]["extra"] == {"a": [1, 2]}
+    assert math.isnan(lines[2]["loss"]) and lines[2]["grad_norm"] == math.inf
+    assert lines[3]["note"] == "from the last checkpoint" and lines[3]["extra"] == {"a": [1, 2]}
 
 
 def test_runlog_refuses_an_event_or_field_that_is_not_one_word(tmp_path):

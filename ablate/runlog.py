@@ -29,7 +29,8 @@ _FIELD = re.compile(r'([A-Za-z_][A-Za-z0-9_.]*)=("(?:[^"\\]|\\.)*"|\S+)')
 
 def _value(v) -> str:
     if isinstance(v, str):
-        return v if _BARE.match(v) and v not in ("true", "false", "null") and not _is_number(v) else json.dumps(v)
+        plain = _BARE.match(v) and v not in ("true", "false", "null") and not _is_number(v)
+        return v if plain else json.dumps(v)
     if isinstance(v, float) and math.isfinite(v):
         return repr(v)  # shortest text that reads back as the same float (Python docs, repr)
     return json.dumps(v, separators=(",", ":"), default=str)
@@ -97,5 +98,6 @@ class RunLog:
                 f.write(text + "\n")
                 f.flush()
         except OSError as exc:
-            raise WriteError(f"{self.path}: could not append a line ({exc.strerror}); earlier lines are kept") from None
+            raise WriteError(f"{self.path}: could not append a line ({exc.strerror}); "
+                             "earlier lines are kept") from None
         return text

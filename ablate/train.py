@@ -37,8 +37,8 @@ def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
 
 def preflight(argv: list[str]) -> dict | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
-    from .grid import (check_cells, check_fairness, compose_checked, expand_jobs, find_baseline, output_folder,
-                       override_dict)
+    from .grid import (check_cells, check_fairness, compose_checked, expand_jobs, find_baseline,
+                       output_folder, override_dict)
 
     multirun, design, hydra_side = _split_argv(argv)
     if not multirun:
@@ -80,7 +80,8 @@ def _check_free(run_dir: Path) -> None:
         sys.exit(EXIT_CONFIG)
 
 
-ELSEWHERE = ".running_elsewhere.jsonl"  # grid folder: one line per cell skipped because another process held it
+# In a grid folder during a launch: one JSON line per cell skipped because another process held it.
+ELSEWHERE = ".running_elsewhere.jsonl"
 
 
 def _note_running_elsewhere(grid_dir: Path, exc: records.FolderBusy) -> None:
@@ -292,7 +293,8 @@ def _grid_epilogue(grid_dir: Path) -> None:
         for name in statuses.get(status, []):
             print(f"  {status}: {name}")
     for row in elsewhere:
-        print(f"  running elsewhere: {row['run']} (pid {row.get('pid')} on {row.get('host')} since {row.get('since')})")
+        who = f"pid {row.get('pid')} on {row.get('host')} since {row.get('since')}"
+        print(f"  running elsewhere: {row['run']} ({who})")
     print(f"report:      h2h-report {_rel(grid_dir)}")
     print(f"curves:      tensorboard --logdir {_rel(grid_dir)}")
 

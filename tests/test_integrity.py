@@ -12,11 +12,9 @@ import os
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import pytest
-
 from trainer_helpers import ROOT, SMALL_DATA, run_dirs, summary
 
 FAST = ["budget=smoke", "probes=off", *SMALL_DATA, "runtime.threads=1", "runtime.progress=false"]
@@ -29,7 +27,8 @@ def h2h(args, cache, cwd, module="ablate.train", extra_env=None, popen=False, ti
     env.update(extra_env or {})
     cmd = [sys.executable, "-m", module, *args]
     if popen:
-        return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=cwd)
+        return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
+                                cwd=cwd)
     return subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, env=env, cwd=cwd)
 
 
@@ -87,7 +86,8 @@ with folder_lock(sys.argv[1]):
 
 
 def hold_in_child(folder):
-    child = subprocess.Popen([sys.executable, "-c", HOLD, str(folder)], stdout=subprocess.PIPE, text=True, cwd=ROOT)
+    child = subprocess.Popen([sys.executable, "-c", HOLD, str(folder)], stdout=subprocess.PIPE, text=True,
+                             cwd=ROOT)
     assert child.stdout.readline().strip() == "held"
     return child
 
@@ -99,9 +99,8 @@ def test_folder_lock_held_by_another_process_refuses_in_one_line_naming_it(tmp_p
     try:
         holder = lock_holder(tmp_path)
         assert holder["pid"] == child.pid and holder["host"] == os.uname().nodename
-        with pytest.raises(FolderBusy) as caught:
-            with folder_lock(tmp_path):
-                pytest.fail("entered a folder that another process holds")
+        with pytest.raises(FolderBusy) as caught, folder_lock(tmp_path):
+            pytest.fail("entered a folder that another process holds")
         message = str(caught.value)
         assert "\n" not in message and str(tmp_path) in message
         assert f"pid {child.pid} on {holder['host']} since {holder['since']}" in message
@@ -229,7 +228,8 @@ def test_cache_files_all_carry_a_manifest_entry(built):
         # hashlib's SHA-256 of the file as a whole, against our chunked reading of it
         import hashlib
 
-        assert entry["sha256"] == file_sha256(built / name) == hashlib.sha256((built / name).read_bytes()).hexdigest()
+        whole = hashlib.sha256((built / name).read_bytes()).hexdigest()
+        assert entry["sha256"] == file_sha256(built / name) == whole
         assert entry["bytes"] == (built / name).stat().st_size
     assert check_cache(built, hashes=True) is None
 
@@ -266,11 +266,12 @@ def test_h2h_corpus_checks_hashes_and_rebuilds_a_changed_text_file(built, tmp_pa
     folder = damaged_copy(built, tmp_path, "train.txt", "truncated")
     text = (built / "train.txt").read_bytes()
     (folder / "train.txt").write_bytes(text[::-1])  # same size, other content: only the hash tells
-    proc = h2h(["--cache-dir", str(tmp_path), "n_documents=300", "tokenizer.train_documents=300"], tmp_path, ROOT,
-               module="toy_corpus.cli", timeout=120)
+    args = ["--cache-dir", str(tmp_path), "n_documents=300", "tokenizer.train_documents=300"]
+    proc = h2h(args, tmp_path, ROOT, module="toy_corpus.cli", timeout=120)
     assert proc.returncode == 0, proc.stderr
     (line,) = stderr_lines(proc.stderr)
-    assert line == f"corpus cache {folder}: train.txt has other content than the manifest records (SHA-256 differs); rebuilding it"
+    assert line == (f"corpus cache {folder}: train.txt has other content than the manifest records "
+                    "(SHA-256 differs); rebuilding it")
     assert (folder / "train.txt").read_bytes() == text
 
 
@@ -300,7 +301,8 @@ def test_runlog_lines_are_timestamped_and_appended_across_two_writers(tmp_path):
     first.line("diverged", step=9, loss=float("nan"), grad_norm=float("inf"), last_finite_loss=5.4)
     # a second writer in another process, as a resumed run would be
     code = ("import sys; from ablate.runlog import RunLog; "
-            "RunLog(sys.argv[1]).line('resume', step=8, note='from the last checkpoint', extra={'a': [1, 2]})")
+            "RunLog(sys.argv[1]).line('resume', step=8, note='from the last checkpoint', "
+            "extra={'a': [1, 2]})")
     subprocess.run([sys.executable, "-c", code, str(tmp_path)], check=True, cwd=ROOT)
     t1 = datetime.datetime.now().astimezone()
     raw = (tmp_path / "train.log").read_text().splitlines()
@@ -310,7 +312,8 @@ def test_runlog_lines_are_timestamped_and_appended_across_two_writers(tmp_path):
     # datetime.fromisoformat (Python docs) reads each stamp as ISO 8601 with a UTC offset
     stamps = [datetime.datetime.fromisoformat(r.split(" ", 1)[0]) for r in raw]
     assert all(s.utcoffset() is not None for s in stamps)
-    assert t0 - datetime.timedelta(seconds=1) <= stamps[0] and stamps == sorted(stamps) and stamps[-1] <= t1 + datetime.timedelta(seconds=1)
+    slack = datetime.timedelta(seconds=1)
+    assert t0 - slack <= stamps[0] and stamps == sorted(stamps) and stamps[-1] <= t1 + slack
     assert lines[1]["val_loss"] == 5.475123456789 and lines[0]["threads"] == 1
     assert math.isnan(lines[2]["loss"]) and lines[2]["grad_norm"] == math.inf
     assert lines[3]["note"] == "from the last checkpoint" and lines[3]["extra"] == {"a": [1, 2]}
@@ -405,7 +408,8 @@ def test_full_disk_during_a_checkpoint_save_keeps_the_previous_checkpoint(tmp_pa
         monkeypatch.setattr(torch, "save", enospc)
     else:
         WRITE_STEPS[step](monkeypatch)
-    with pytest.raises(records.WriteError, match=f"^{path}: could not write \\({ENOSPC_TEXT}\\); the previous file is unchanged$"):
+    expected = f"^{path}: could not write \\({ENOSPC_TEXT}\\); the previous file is unchanged$"
+    with pytest.raises(records.WriteError, match=expected):
         records.save_checkpoint(path, {"fingerprint": "a" * 16, "step": 4, "model": {}, "optimizer": {}})
     monkeypatch.undo()
     assert path.read_bytes() == old and records.load_checkpoint(path, "a" * 16)["step"] == 2
@@ -485,7 +489,8 @@ def test_full_disk_at_a_checkpoint_ends_the_run_in_one_line_and_keeps_the_last_o
     assert proc.returncode == 1, proc.stderr[-2000:]
     (line,) = stderr_lines(proc.stderr)
     run_dir = next((tmp_path / "runs").rglob("checkpoint.pt")).parent
-    assert line == f"h2h-train: error: {run_dir}/checkpoint.pt: could not write ({ENOSPC_TEXT}); the previous file is unchanged"
+    assert line == (f"h2h-train: error: {run_dir}/checkpoint.pt: could not write ({ENOSPC_TEXT}); "
+                    "the previous file is unchanged")
     # torch.load weights_only=True: tensors and plain containers only (torch.load docs)
     assert torch.load(run_dir / "checkpoint.pt", map_location="cpu", weights_only=True)["step"] == 2
     assert not list(run_dir.glob(".*.partial")) and not (run_dir / "summary.json").exists()

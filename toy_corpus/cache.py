@@ -52,7 +52,9 @@ def read_manifest(folder: Path) -> tuple[dict | None, str | None]:
     except (OSError, ValueError) as exc:
         return None, f"{MANIFEST} is unreadable ({type(exc).__name__})"
     files = manifest.get("files") if isinstance(manifest, dict) else None
-    if not isinstance(files, dict) or not all(isinstance(v, dict) and {"bytes", "sha256"} <= set(v) for v in files.values()):
+    entries_ok = isinstance(files, dict) and all(isinstance(v, dict) and {"bytes", "sha256"} <= set(v)
+                                                 for v in files.values())
+    if not entries_ok:
         return None, f"{MANIFEST} is not a manifest of this cache"
     return manifest, None
 

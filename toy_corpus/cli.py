@@ -43,7 +43,7 @@ def main(argv: list[str] | None = None) -> int:
         cfg = OmegaConf.merge(cfg, OmegaConf.from_dotlist(args.overrides))
         data = OmegaConf.to_container(cfg, resolve=True)
         t0 = time.perf_counter()
-        corpus = get_corpus(data, args.seq_len, args.cache_dir, verify=True)  # sizes and SHA-256 of every file
+        corpus = get_corpus(data, args.seq_len, args.cache_dir, verify=True)  # sizes and SHA-256 of each file
         seconds = time.perf_counter() - t0
     except (ValueError, FileNotFoundError, CacheError) as err:
         print(f"h2h-corpus: error: {err}", file=sys.stderr)

@@ -175,7 +175,8 @@ def _check_probe_lengths(probe_sets: Mapping[str, list[dict]], seq_len: int) -> 
                              f"allowed: items of at most seq_len + 1 tokens")
 
 
-LOAD_ERRORS = (OSError, ValueError, EOFError, RuntimeError, KeyError)  # numpy, json, sentencepiece on damaged files
+# what numpy, json and sentencepiece raise on a damaged file
+LOAD_ERRORS = (OSError, ValueError, EOFError, RuntimeError, KeyError)
 
 
 def _first_line(exc: BaseException) -> str:
@@ -232,7 +233,8 @@ def get_corpus(data_cfg: Mapping, seq_len: int, cache_dir: str | os.PathLike | N
             corpus, again = _checked_load(path, cfg, verify) if path.exists() else (None, None)
             if corpus is None:
                 if path.exists():
-                    print(f"corpus cache {path}: {again or problem}; rebuilding it", file=sys.stderr, flush=True)
+                    print(f"corpus cache {path}: {again or problem}; rebuilding it",
+                          file=sys.stderr, flush=True)
                 _build_into_place(cfg, seq_len, root, path)
                 corpus, problem = _checked_load(path, cfg, True)
                 if corpus is None:

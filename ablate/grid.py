@@ -1,11 +1,12 @@
 """Before a grid trains: expand its jobs, validate each config, and check fairness.
 
-Uses Hydra's own override parser and basic sweeper to expand the sweep exactly as ``-m`` will,
-then composes each job's config with the compose API.
+Uses Hydra's own override parser to expand the sweep as ``-m`` will, then composes each job's
+config with the compose API.
 """
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 
 import torch
@@ -36,9 +37,25 @@ def cell_name(overrides: list[str]) -> str:
     return ",".join(sorted(keep)) or "default"
 
 
+def sweep_jobs(parsed: list) -> list[list[str]]:
+    """Every combination of the parsed overrides' values, in Hydra's basic-sweeper order: the cross
+    product over keys in first-seen order, a later override of a key replacing an earlier one.
+    Hydra has no public function for this expansion, so it is written here from the public
+    ``Override`` API (``sweep_string_iterator``, ``get_value_element_as_str``)."""
+    axes: dict[str, list[str]] = {}
+    for o in parsed:
+        key = o.get_key_element()
+        if o.is_sweep_override():
+            if not o.is_discrete_sweep():
+                raise ConfigError(f"{key}: only lists of values can be swept (a,b,c or choice(...)), not ranges")
+            axes[key] = [f"{key}={v}" for v in o.sweep_string_iterator()]
+        else:
+            axes[key] = [f"{key}={o.get_value_element_as_str()}"]
+    return [list(job) for job in itertools.product(*axes.values())]
+
+
 def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
     """Every job's override list for ``h2h-train -m <overrides>``, recipe sweeps included."""
-    from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
     from hydra.core.override_parser.overrides_parser import OverridesParser
 
     from .config import compose
@@ -48,7 +65,7 @@ def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
         parsed = parser.parse_overrides(overrides)
     except Exception as exc:
         raise ConfigError(one_line(exc)) from None
-    first = [o.get_key_element() + "=" + (str(list(o.sweep_iterator())[0]) if o.is_sweep_override() else o.get_value_element_as_str()) if not o.is_delete() else o.input_line for o in parsed]
+    first = [_first_value(o) for o in parsed]
     try:
         base = compose(first, return_hydra_config=True)
     except Exception as exc:
@@ -56,24 +73,64 @@ def expand_jobs(overrides: list[str]) -> tuple[list[list[str]], object]:
     params = dict(base.hydra.sweeper.params or {})
     cli_keys = {o.get_key_element() for o in parsed}
     merged = list(overrides) + [f"{k}={v}" for k, v in params.items() if k not in cli_keys]
-    jobs = BasicSweeper.split_arguments(parser.parse_overrides(merged), None)[0]
-    return jobs, base
+    return sweep_jobs(parser.parse_overrides(merged)), base
 
 
-def check_cells(jobs: list[list[str]], vocab_size: int = 1024) -> tuple[list[Cell], object]:
-    """Compose and validate every job; group jobs into cells; account each cell on the meta
-    device (no memory, no time)."""
-    from .config import build_model, compose
+def _first_value(o) -> str:
+    if o.is_delete():
+        return o.input_line
+    value = str(next(iter(o.sweep_iterator()))) if o.is_sweep_override() else o.get_value_element_as_str()
+    return f"{o.get_key_element()}={value}"
 
+
+def data_shape(cfg) -> tuple[int, int]:
+    """(vocabulary size, tokens per training sequence) of the config's data, without building it."""
+    data = OmegaConf.to_container(cfg.data, resolve=True)
+    if data.get("kind", "logbook") == "logbook":
+        return int(data["vocab_size"]), int(cfg.model.seq_len)
+    from toy_corpus.drills import Drill
+
+    drill = Drill.from_dict({**data, "seed": int(cfg.seed)})
+    return int(drill.vocab_size), int(drill.length - 1)
+
+
+def accounting_of(cfg):
+    """Parameters and FLOPs per token of a config's model, on the meta device (no memory, no time)."""
+    from .config import build_model
+
+    vocab_size, seq_len = data_shape(cfg)
+    with torch.device("meta"):
+        return account(build_model(cfg, vocab_size), seq_len)
+
+
+def check_cells(jobs: list[list[str]]) -> list[Cell]:
+    """Compose and check every job; group jobs into cells; account each cell."""
     cells: dict[str, Cell] = {}
     for job in jobs:
         cfg = compose_checked(job)
         name = cell_name(job)
         if name not in cells:
-            with torch.device("meta"):
-                acc = account(build_model(cfg, vocab_size))
-            cells[name] = Cell(name, job, cfg, acc)
-    return list(cells.values()), cfg
+            cells[name] = Cell(name, job, cfg, accounting_of(cfg))
+    return list(cells.values())
+
+
+def baseline_overrides(run_overrides: list[str], baseline: str) -> list[str]:
+    """A run's overrides with the baseline cell's ``key=value`` pairs in place of the same keys."""
+    base = override_dict(baseline.split(","))
+    return [o for o in run_overrides if o.split("=", 1)[0] not in base] + [f"{k}={v}" for k, v in base.items()]
+
+
+def baseline_flops_per_token(resolved: dict, run_overrides: list[str]) -> float:
+    """Training FLOPs per token of the grid's declared baseline at this run's other settings: what
+    ``budget.tokens`` buys when the budget is matched in FLOPs and no FLOPs figure is given."""
+    from .config import compose_isolated
+
+    baseline = (resolved.get("grid") or {}).get("baseline")
+    if not baseline:
+        raise ConfigError("budget.match=flops with budget.flops=null prices budget.tokens at the baseline's FLOPs "
+                          "per token, but grid.baseline is not set; set budget.flops or grid.baseline")
+    cfg = compose_isolated(baseline_overrides(run_overrides, baseline))
+    return accounting_of(cfg).flops_per_token
 
 
 def compose_checked(overrides: list[str]):
@@ -146,8 +203,11 @@ def one_line(exc: BaseException) -> str:
 def find_baseline(cells: list[Cell], baseline: str | None) -> Cell:
     """The cell whose overrides include every ``key=value`` of ``baseline`` (the recipe names
     it without the overrides that all cells share, such as ``budget=smoke``)."""
-    if baseline is None:
-        return next((c for c in cells if "attention=standard" in c.name.split(",")), cells[0])
+    if not baseline:
+        raise ConfigError(
+            "grid.baseline: not set; a grid needs the cell every comparison is made against, e.g. "
+            f"grid.baseline='attention=standard' (quoted); cells: {'; '.join(c.name for c in cells)}"
+        )
     wanted = set(baseline.split(","))
     matches = [c for c in cells if wanted <= set(c.name.split(","))]
     if len(matches) != 1:

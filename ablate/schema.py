@@ -70,7 +70,9 @@ class GridSchema:
     baseline: Optional[str] = None
     tolerance: float = 0.02
     unequal_axes: List[str] = field(default_factory=list)
-    target_halfwidth: float = 0.01
+    primary_metric: str = "final_val_loss"
+    resolution: float = 0.01
+    max_seeds: Optional[int] = None
     sweep: Optional[Dict[str, Any]] = None
 
 
@@ -143,4 +145,6 @@ def validate(cfg) -> None:
 def validate_grid(grid) -> None:
     if not 0.0 <= grid.tolerance < 1.0:
         raise ConfigError(f"grid.tolerance={grid.tolerance!r}: must be in [0, 1)")
-    _positive("grid.target_halfwidth", grid.target_halfwidth)
+    _positive("grid.resolution", grid.resolution)
+    if grid.max_seeds is not None:
+        _positive("grid.max_seeds", grid.max_seeds, int)

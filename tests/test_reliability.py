@@ -133,7 +133,7 @@ def test_sigint_stops_with_exit_130_a_fresh_checkpoint_and_a_resume_hint(interru
 
 
 def test_sigterm_and_sigint_wait_for_the_step_inside_the_loop_and_interrupt_outside():
-    from ablate.runner import StopSignals
+    from ablate.signals import StopSignals
 
     def deliver(sig):
         os.kill(os.getpid(), sig)

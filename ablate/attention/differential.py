@@ -8,7 +8,7 @@ import torch
 from torch import nn
 
 from .common import causal_softmax, require_bool, require_divisible, require_positive_int
-from .rotary import Rotary
+from .base import ProjectedAttention
 
 LAMBDA_MODES = ("learned", "fixed")
 
@@ -33,7 +33,7 @@ def _future_bias(time: int, like: torch.Tensor) -> torch.Tensor:
     return torch.full((time, time), float("-inf"), dtype=like.dtype, device=like.device).triu(1)
 
 
-class DifferentialAttention(nn.Module):
+class DifferentialAttention(ProjectedAttention):
     r"""Causal differential attention with rotary positions.
 
     Each of the :math:`h = d_{model} / (2d)` heads has two query/key groups of width :math:`d`
@@ -84,22 +84,16 @@ class DifferentialAttention(nn.Module):
         lambda_std: float = 0.1,
         rope_base: float = 10000.0,
     ):
-        super().__init__()
         require_positive_int("head_dim", head_dim)
         require_bool("head_norm", head_norm)
         require_divisible("d_model", d_model, 2 * head_dim, f"2 * head_dim = {2 * head_dim}")
         if lambda_mode not in LAMBDA_MODES:
             raise ValueError(f"lambda_mode={lambda_mode!r} must be one of {', '.join(LAMBDA_MODES)}")
-        self.d_model, self.head_dim = d_model, head_dim
+        super().__init__(d_model, head_dim, rope_base, layer_index, n_layers)
         self.n_heads = d_model // (2 * head_dim)
-        self.layer_index, self.n_layers = layer_index, n_layers
         self.lambda_mode = lambda_mode
         self.lambda_init = resolve_lambda_init(lambda_init, layer_index)
-        self.q_proj = nn.Linear(d_model, d_model, bias=False)
-        self.k_proj = nn.Linear(d_model, d_model, bias=False)
-        self.v_proj = nn.Linear(d_model, d_model, bias=False)
-        self.out_proj = nn.Linear(d_model, d_model, bias=False)
-        self.rotary = Rotary(head_dim, rope_base)
+        self.lambda_std = lambda_std
         self.use_head_norm = bool(head_norm)
         self.head_norm = nn.RMSNorm(2 * head_dim, eps=1e-5, elementwise_affine=False) if head_norm else None
         if lambda_mode == "learned":
@@ -107,6 +101,16 @@ class DifferentialAttention(nn.Module):
             self.lambda_k1 = nn.Parameter(torch.randn(head_dim) * lambda_std)
             self.lambda_q2 = nn.Parameter(torch.randn(head_dim) * lambda_std)
             self.lambda_k2 = nn.Parameter(torch.randn(head_dim) * lambda_std)
+
+    def init_parameter(self, name: str, tensor: torch.Tensor, generator: torch.Generator) -> None:
+        """The lambda vectors ~ N(0, lambda_std^2), drawn from the decoder's keyed generator."""
+        if name.startswith("lambda_"):
+            with torch.no_grad():
+                tensor.copy_(torch.randn(tensor.shape, generator=generator) * self.lambda_std)
+
+    def log_scalars(self) -> dict[str, float]:
+        """The current lambda, logged by the trainer as ``lambda/layer_<i>``."""
+        return {"lambda": float(self.lambda_value().detach())}
 
     def lambda_value(self) -> torch.Tensor:
         """The current lambda as a 0-d tensor."""

@@ -165,9 +165,11 @@ def validate_all(cfg) -> None:
             resolve_config(OmegaConf.to_container(cfg.probes, resolve=True))
         except ValueError as exc:
             raise ConfigError(one_line(exc)) from None
+    from .attention import check_block
+
     try:
         with torch.device("meta"):
-            instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
+            block = instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
     except Exception as exc:
         cause = exc.__cause__ or exc.__context__
         if isinstance(exc, ValueError) or isinstance(cause, ValueError):
@@ -176,6 +178,10 @@ def validate_all(cfg) -> None:
                 message += f" (model.d_model={cfg.model.d_model}, attention.head_dim={cfg.attention.get('head_dim')})"
             raise ConfigError(f"attention: {message}") from None
         raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {one_line(exc)}") from None
+    try:
+        check_block(block)
+    except TypeError as exc:
+        raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: {exc}") from None
 
 
 def one_line(exc: BaseException) -> str:

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import torch
 from omegaconf import OmegaConf
 
-from .compute import account, compare
+from .compute import account, ratios
 from .schema import ConfigError, validate
 
 NOT_DESIGN = ("seed", "recipe", "run_root")
@@ -228,8 +228,8 @@ def fairness_table(cells: list[Cell], baseline: str) -> list[dict]:
     base = next(c for c in cells if c.name == baseline)
     rows = []
     for c in cells:
-        ratios = compare(c.accounting, base.accounting)
-        rows.append({"cell": c.name, **c.accounting.as_dict(), **ratios})
+        row_ratios = ratios(c.accounting, base.accounting)
+        rows.append({"cell": c.name, **c.accounting.as_dict(), **row_ratios})
     return rows
 
 

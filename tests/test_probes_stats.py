@@ -120,8 +120,8 @@ def test_excess_kurtosis_matches_scipy():
         t = torch.as_tensor(x)
         # Reference: scipy.stats.kurtosis, Fisher definition (excess), population moments.
         assert excess_kurtosis(t) == pytest.approx(scipy.stats.kurtosis(x, fisher=True, bias=True), rel=1e-9)
-    # Laplace excess kurtosis is 3 (reference: scipy.stats.laplace.stats(moments="k")).
-    assert float(scipy.stats.laplace.stats(moments="k")) == 3.0
+    # The Laplace distribution's excess kurtosis is 3 (a textbook closed form, e.g. Johnson, Kotz &
+    # Balakrishnan, "Continuous Univariate Distributions", vol. 2; value from memory).
     assert excess_kurtosis(torch.as_tensor(rng.laplace(size=200000))) == pytest.approx(3.0, abs=0.2)
 
 

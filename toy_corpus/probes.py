@@ -173,7 +173,6 @@ def classification_set(world: World, encode: Encode, cfg: Mapping, seed: int, se
                                          f"needs {len(out.tokens)} tokens > seq_len + 1 = {seq_len + 1}; allowed: fewer classes, "
                                          f"demonstrations, queries or noise_features")
                     items.append({"tokens": out.tokens, "answer_spans": answer_spans, "demo_label_spans": demo_spans,
-                                  "query_classes": [q["cls"] for q in ep["queries"]],
                                   "meta": {"n_classes": n_classes, "n_demos": n_demos, "ordering": ordering,
                                            "episode": episode, "order_index": order_index}})
                 episode += 1

@@ -146,10 +146,8 @@ def capture_block_outputs(model: nn.Module):
 def validation_windows(val_ids: np.ndarray, seq_len: int, n_windows: int) -> np.ndarray:
     """Fixed validation windows ``int64 [n, seq_len + 1]``, chosen by the corpus package (the same
     windows the trainer's validation loss reads)."""
-    try:
-        from toy_corpus.batches import validation_windows as corpus_windows
-    except ImportError as err:  # pragma: no cover - the corpus package ships with the project
-        raise ImportError(f"probes need toy_corpus.batches.validation_windows: {err}") from err
+    from toy_corpus.batches import validation_windows as corpus_windows
+
     return corpus_windows(np.asarray(val_ids), seq_len, n_windows)
 
 

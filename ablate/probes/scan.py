@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
@@ -27,7 +27,6 @@ class ScanResult:
     rows: list  # per item: head-mean attention rows [layers, q + 1] at the query, or None
     forward_seconds: float = 0.0
     rows_seconds: float = 0.0
-    extra: dict = field(default_factory=dict)
 
 
 def query_position(item: dict) -> int:

@@ -18,6 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from .checks import one_line
 from .schema import ConfigError
 
 
@@ -155,7 +156,7 @@ def _logbook(resolved: dict, seq_len: int, batch_size: int, seed: int, device) -
         split = "validation"
         val = toy_corpus.validation_windows(corpus.val_ids, seq_len, eval_windows)
     except ValueError as exc:
-        raise ConfigError(_window_message(str(exc).splitlines()[0], split, seq_len, eval_windows)) from None
+        raise ConfigError(_window_message(one_line(exc, 1000), split, seq_len, eval_windows)) from None
     return LogbookSource(corpus, batches, torch.from_numpy(val).to(device), batch_size)
 
 

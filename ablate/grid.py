@@ -1,4 +1,4 @@
-"""Before a grid trains: expand its jobs, validate each config, and check fairness.
+"""Before a grid trains: expand its jobs, check each config, and check fairness.
 
 Uses Hydra's own override parser to expand the sweep as ``-m`` will, then composes each job's
 config with the compose API.
@@ -13,7 +13,7 @@ import torch
 from omegaconf import OmegaConf
 
 from .compute import account, ratios
-from .schema import ConfigError, validate
+from .schema import ConfigError, check_ranges
 
 NOT_DESIGN = ("seed", "recipe", "run_root")
 
@@ -143,15 +143,15 @@ def compose_checked(overrides: list[str]):
         raise
     except Exception as exc:
         raise ConfigError(one_line(exc)) from None
-    validate_all(cfg)
+    check_all(cfg)
     return cfg
 
 
-def validate_all(cfg) -> None:
+def check_all(cfg) -> None:
     """Schema ranges, the data group's own checks, and building one attention block."""
     from hydra.utils import instantiate
 
-    validate(cfg)
+    check_ranges(cfg)
     try:
         import toy_corpus
 
@@ -159,10 +159,10 @@ def validate_all(cfg) -> None:
     except ValueError as exc:
         raise ConfigError(f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)) from None
     if cfg.get("probes") is not None:
-        from .probes import resolve_config
+        from .probes import check_config
 
         try:
-            resolve_config(OmegaConf.to_container(cfg.probes, resolve=True))
+            check_config(OmegaConf.to_container(cfg.probes, resolve=True))
         except ValueError as exc:
             raise ConfigError(one_line(exc)) from None
     from .attention import check_block

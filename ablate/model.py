@@ -25,6 +25,8 @@ from typing import Callable
 import torch
 from torch import nn
 
+from .checks import positive_int
+
 AttentionFactory = Callable[[int], nn.Module]
 
 
@@ -96,8 +98,7 @@ class Decoder(nn.Module):
     ):
         super().__init__()
         for name, value in (("vocab_size", vocab_size), ("d_model", d_model), ("n_layers", n_layers), ("seq_len", seq_len)):
-            if not isinstance(value, int) or isinstance(value, bool) or value <= 0:
-                raise ValueError(f"{name}={value!r} must be a positive integer")
+            positive_int(name, value)
         self.vocab_size, self.d_model, self.n_layers, self.seq_len = vocab_size, d_model, n_layers, seq_len
         self.ffn_hidden = ffn_hidden or swiglu_hidden(d_model)
         self.tie_embeddings = tie_embeddings

@@ -22,6 +22,7 @@ import torch
 from omegaconf import OmegaConf
 
 from . import records
+from .checks import one_line
 from .compute import account, steps_from_budget
 from .optim import build_optimizer, lr_at, training_step
 from .signals import StopSignals
@@ -228,7 +229,7 @@ def resume(state: RunState, saved: dict) -> None:
     except (KeyError, ValueError, RuntimeError) as exc:
         raise records.CheckpointError(
             f"checkpoint {path} does not fit this model or optimizer ({type(exc).__name__}: "
-            f"{str(exc).splitlines()[0][:160]}); delete it to start the run afresh"
+            f"{one_line(exc)}); delete it to start the run afresh"
         ) from None
     state.step, state.last_val, state.last_finite = int(saved["step"]), saved.get("last_val"), saved.get("last_train")
     state.history = saved.get("history") or {}

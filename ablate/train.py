@@ -16,6 +16,7 @@ import sys
 from pathlib import Path
 
 from . import records
+from .checks import one_line
 from .config import CONF_DIR, CHECKOUT
 from .schema import ConfigError
 
@@ -66,7 +67,7 @@ def _task_impl(cfg) -> records.RunSummary | None:
     from hydra.core.hydra_config import HydraConfig
     from hydra.types import RunMode
 
-    from .grid import cell_name, validate_all
+    from .grid import cell_name, check_all
     from .runner import Interrupted, RunInfo, run
 
     hc = HydraConfig.get()
@@ -90,7 +91,7 @@ def _task_impl(cfg) -> records.RunSummary | None:
             sys.exit(1)
         return done
     try:
-        validate_all(cfg)
+        check_all(cfg)
         summary = run(cfg, info, parallel_jobs=n_jobs if in_grid else None)
     except Interrupted as exc:
         print(f"h2h-train: {exc}", file=sys.stderr, flush=True)
@@ -123,7 +124,7 @@ def _task_impl(cfg) -> records.RunSummary | None:
 def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> records.RunSummary:
     summary = records.RunSummary(
         status="failed", attention=info.choices.get("attention"), cell=info.cell, seed=int(cfg.seed),
-        choices=info.choices, overrides=info.overrides, error=f"{type(exc).__name__}: {exc}".splitlines()[0],
+        choices=info.choices, overrides=info.overrides, error=one_line(f"{type(exc).__name__}: {exc}", 1000),
     )
     earlier = records.read_summary(run_dir)
     if earlier and earlier.status != "failed":

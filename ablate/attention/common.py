@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import torch
 
+from ..checks import positive_int
+
 
 def require_divisible(name: str, value: int, divisor: int, what: str) -> None:
     if not isinstance(value, int) or value <= 0 or value % divisor:
@@ -11,8 +13,7 @@ def require_divisible(name: str, value: int, divisor: int, what: str) -> None:
 
 
 def require_positive_int(name: str, value) -> None:
-    if not isinstance(value, int) or isinstance(value, bool) or value <= 0:
-        raise ValueError(f"{name}={value!r} must be a positive integer")
+    positive_int(name, value)
 
 
 def require_bool(name: str, value) -> None:

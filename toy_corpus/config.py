@@ -90,7 +90,13 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
     _int(cfg, "world.keepers", 2, 200)
     _int(cfg, "world.ships", 4, 400)
     _int(cfg, "world.labels", 16, 400)
+    _check_mixture(cfg)
+    _check_documents(cfg)
+    _check_tokenizer(cfg)
+    _check_probe_sets(cfg, seq_len)
 
+
+def _check_mixture(cfg: Mapping) -> None:
     mixture = _get(cfg, "mixture")
     if not isinstance(mixture, Mapping) or not mixture:
         raise ValueError(f"data.mixture={mixture!r}: must map document kinds ({', '.join(DOCUMENT_KINDS)}) to weights")
@@ -102,6 +108,9 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
     if sum(float(x) for x in mixture.values()) <= 0:
         raise ValueError(f"data.mixture: weights sum to {sum(float(x) for x in mixture.values())}; they must sum to a positive number")
 
+
+def _check_documents(cfg: Mapping) -> None:
+    mixture = _get(cfg, "mixture")
     _real(cfg, "narrative.zipf", 0.0, 3.0)
     _range(cfg, "narrative.sentences", 1, 100)
     n_lo, n_hi = _range(cfg, "facts.n_facts", 1, 24)
@@ -135,6 +144,9 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
             if w_hi > n_words:
                 raise ValueError(f"data.copy.words={[w_lo, w_hi]}: with copy.distinct=true a note has at most {n_words} "
                                  f"words (the filler lexicon); allowed: upper bound <= {n_words}")
+
+
+def _check_tokenizer(cfg: Mapping) -> None:
     model_type = _get(cfg, "tokenizer.model_type")
     if model_type not in TOKENIZER_TYPES:
         raise ValueError(f"data.tokenizer.model_type={model_type!r}; allowed: {', '.join(TOKENIZER_TYPES)}")
@@ -145,6 +157,8 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
         raise ValueError(f"data.vocab_size={vocab!r}: must be an integer in [{lo}, {hi}] for this text "
                          f"(smaller cannot hold every character; larger has no pieces left to form)")
 
+
+def _check_probe_sets(cfg: Mapping, seq_len: int) -> None:
     lens = _int_list(cfg, "probes.retrieval.context_lens", 16)
     for n in lens:
         if n > seq_len + 1:

@@ -81,5 +81,5 @@ def build_model(cfg, vocab_size: int):
         ffn_hidden=m.ffn_hidden,
         tie_embeddings=m.tie_embeddings,
         init_std=m.init_std,
-        init_seed=int(cfg.seed),
+        init_seed=int(cfg.seed) if cfg.model.get("keyed_init", True) else None,
     )

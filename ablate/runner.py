@@ -186,6 +186,7 @@ def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, di
     batch_size = resolved["budget"]["batch_size"]
     source = open_source(resolved, resolved["model"]["seq_len"], batch_size, resolved["seed"], device)
     records.atomic_write_bytes(info.run_dir / records.CONFIG, OmegaConf.to_yaml(cfg, resolve=True).encode())
+    torch.manual_seed(resolved["seed"])  # anything not drawn from a keyed generator
     model = build_model(cfg, source.vocab_size)
     acc = account(model, source.seq_len)
     tokens_per_step = batch_size * source.seq_len

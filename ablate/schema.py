@@ -30,6 +30,7 @@ class ModelSchema:
     ffn_hidden: Optional[int] = None
     tie_embeddings: bool = True
     init_std: float = 0.02
+    keyed_init: bool = True
 
 
 @dataclass

@@ -44,6 +44,7 @@ def report(grid_dir):
                           cwd=ROOT, timeout=300)
 
 
+@pytest.mark.e2e
 def test_smoke_grid_report_and_relaunch(tmp_path, cache):
     proc = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
     assert proc.returncode == 0, proc.stderr[-3000:]
@@ -63,6 +64,7 @@ def test_smoke_grid_report_and_relaunch(tmp_path, cache):
     assert again.stdout.count("skip") == 4 and "done " not in again.stdout
 
 
+@pytest.mark.e2e
 def test_a_a_grid_reports_a_difference_whose_interval_covers_zero(tmp_path, cache):
     # The same block under two names (a copy of standard.yaml), 3 seeds: paired by seed the
     # runs are identical, so the difference must be exactly 0 and its interval must cover 0.

@@ -19,6 +19,8 @@ import torch
 
 from trainer_helpers import ROOT, SMALL_DATA, run_dirs, scalars, summary, train
 
+pytestmark = pytest.mark.e2e  # runs the real commands in a subprocess
+
 SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA, "runtime.threads=1"]
 RESUMABLE = [*SMOKE, "budget.checkpoint_every_tokens=2048"]  # 16 steps of 1024 tokens, a checkpoint every 2
 # AdamW at this lr gives a non-finite loss at step 2 of the smoke run (seen, not assumed); written

@@ -14,6 +14,8 @@ from typing import Any, Dict, List, Optional
 
 from hydra.core.config_store import ConfigStore
 
+from toy_corpus.config import LogbookSchema
+
 from .checks import positive_int, positive_number
 
 
@@ -111,10 +113,12 @@ class RunSchema:
 
 def register() -> None:
     """The run's schema, and one schema per option group whose options name it in their defaults
-    list (``conf/probes/*.yaml``: ``defaults: [probes_schema, _self_]``)."""
+    list (``conf/probes/*.yaml``: ``defaults: [probes_schema, _self_]``; ``conf/data/toy.yaml``:
+    ``logbook_schema``, defined beside its range checks in ``toy_corpus/config.py``)."""
     store = ConfigStore.instance()
     store.store(name="run_schema", node=RunSchema)
     store.store(group="probes", name="probes_schema", node=ProbesSchema)
+    store.store(group="data", name="logbook_schema", node=LogbookSchema)
 
 
 def _positive(key: str, value, kind=(int, float)) -> None:

@@ -27,11 +27,11 @@ class Cell:
 
 
 def cell_name(overrides: list[str]) -> str:
-    """The design choices of a job: its overrides without seed, recipe and runtime/hydra keys."""
+    """The design choices of a job: its overrides without seed, recipe and runtime/hydra/grid keys."""
     keep = []
     for o in overrides:
         key = o.split("=", 1)[0].lstrip("+~")
-        if key in NOT_DESIGN or key.startswith(("hydra.", "runtime.")):
+        if key in NOT_DESIGN or key.startswith(("hydra.", "runtime.", "grid.")):
             continue
         keep.append(o)
     return ",".join(sorted(keep)) or "default"

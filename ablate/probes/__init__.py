@@ -1,7 +1,7 @@
 """Mechanism probes: each takes a model and a probe set (or validation windows) and returns a flat
 ``name -> float`` dict; :func:`run_probes` runs the enabled ones for the trainer."""
 
-from .attention import attention_probe, span_masses
+from .attention import attention_probe, span_shares
 from .classification import classification_probe
 from .outliers import excess_kurtosis, magnitude_stats, outlier_probe
 from .pictures import attention_pictures
@@ -16,7 +16,7 @@ __all__ = [
     "PROBE_NAMES",
     "retrieval_probe",
     "attention_probe",
-    "span_masses",
+    "span_shares",
     "outlier_probe",
     "magnitude_stats",
     "excess_kurtosis",

@@ -55,8 +55,8 @@ class DrillConfig:
     lookalikes: int = 1               # noisy_recall: other context keys sharing each key's first token
     n_suffixes: int = 16              # noisy_recall: second-token symbols
     span_len: int = 8                 # induction: tokens in the repeated span
-    window: int = 64                  # induction: tokens per sequence (T + 1)
-    n_symbols: int = 64               # induction: vocabulary
+    window: int = 32                  # induction: tokens per sequence (T + 1)
+    n_symbols: int = 16               # induction: vocabulary
 
     def check(self) -> None:
         """Raises ``ValueError`` with one line naming ``data.<key>`` and what is allowed."""

@@ -28,7 +28,6 @@ Copy level = exact accuracy of the best guesser that does not read the query:
 
 from __future__ import annotations
 
-import math
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
@@ -362,7 +361,3 @@ def accuracy(predictions: np.ndarray, tokens: np.ndarray, mask: np.ndarray) -> f
         raise ValueError("accuracy: the mask selects no position")
     return float((predictions == tokens[:, 1:])[mask].mean())
 
-
-def harmonic(n: int) -> float:
-    """H_n = sum_{i=1}^{n} 1/i."""
-    return math.fsum(1.0 / i for i in range(1, n + 1))

@@ -52,7 +52,9 @@ def normalised_area(tokens, acc, budget_tokens: float, copy_level: float) -> flo
     if not budget_tokens > 0:
         raise ValueError(f"budget_tokens={budget_tokens}: must be > 0")
     if t[-1] < budget_tokens:
-        raise ValueError(f"curve: the last logged point ({t[-1]:g} tokens) is before the budget ({budget_tokens:g})")
+        raise ValueError(
+            f"curve: the last logged point ({t[-1]:g} tokens) is before the budget ({budget_tokens:g})"
+        )
     if t[0] == 0:
         t, a = t[1:], a[1:]
     t, a = np.concatenate([[0.0], t]), np.concatenate([[copy_level], a])

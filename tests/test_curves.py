@@ -61,7 +61,9 @@ def test_a_curve_shorter_than_the_budget_is_refused():
         normalised_area([10, 20], [0.1, 0.2], 30, 0.1)
 
 
-@pytest.mark.parametrize("tokens, acc", [([10, 10], [0.1, 0.2]), ([10, 20], [0.1, 1.2]), ([10], [0.1, 0.2]), ([], [])])
+@pytest.mark.parametrize(
+    "tokens, acc", [([10, 10], [0.1, 0.2]), ([10, 20], [0.1, 1.2]), ([10], [0.1, 0.2]), ([], [])]
+)
 def test_bad_curves_are_refused(tokens, acc):
     with pytest.raises(ValueError, match="curve"):
         tokens_to(tokens, acc, 0.5)

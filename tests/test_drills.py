@@ -16,17 +16,30 @@ from toy_corpus.drills import DRILL_KINDS, Drill, DrillConfig, accuracy
 # A small setting per kind, so brute-force loops stay quick; the defaults are checked too.
 SMALL = {
     "recall": dict(kind="recall", n_pairs=6, n_keys=20, n_values=20, n_queries=6),
-    "noisy_recall": dict(kind="noisy_recall", n_pairs=6, lookalikes=2, n_keys=8, n_suffixes=4, n_values=12,
-                         n_queries=6, filler_len=1, n_filler=5),
+    "noisy_recall": dict(
+        kind="noisy_recall",
+        n_pairs=6,
+        lookalikes=2,
+        n_keys=8,
+        n_suffixes=4,
+        n_values=12,
+        n_queries=6,
+        filler_len=1,
+        n_filler=5,
+    ),
     "induction": dict(kind="induction", span_len=5, window=24, n_symbols=16),
 }
-SETTINGS = [pytest.param(SMALL[k], id=k) for k in DRILL_KINDS] + [
-    pytest.param({"kind": k}, id=f"{k}-defaults") for k in DRILL_KINDS
-] + [
-    pytest.param({**SMALL["recall"], "query_sampling": "replacement", "n_queries": 10}, id="recall-replacement"),
-    pytest.param({**SMALL["recall"], "query_sampling": "cycles", "n_queries": 15}, id="recall-cycles"),
-    pytest.param({**SMALL["noisy_recall"], "query_sampling": "replacement"}, id="noisy-replacement"),
-]
+SETTINGS = (
+    [pytest.param(SMALL[k], id=k) for k in DRILL_KINDS]
+    + [pytest.param({"kind": k}, id=f"{k}-defaults") for k in DRILL_KINDS]
+    + [
+        pytest.param(
+            {**SMALL["recall"], "query_sampling": "replacement", "n_queries": 10}, id="recall-replacement"
+        ),
+        pytest.param({**SMALL["recall"], "query_sampling": "cycles", "n_queries": 15}, id="recall-cycles"),
+        pytest.param({**SMALL["noisy_recall"], "query_sampling": "replacement"}, id="noisy-replacement"),
+    ]
+)
 
 
 def harmonic(n: int) -> float:
@@ -48,7 +61,9 @@ def test_a_batch_is_a_pure_function_of_seed_and_step(settings):
     for a, b in ((later[0], later[2]), (later[0], again)):
         assert np.array_equal(a[0], b[0]) and np.array_equal(a[1], b[1])
     assert not np.array_equal(later[0][0], later[1][0])  # another step
-    assert not np.array_equal(later[0][0], Drill.from_dict({**settings, "seed": 4}).batch(7, 16)[0])  # another seed
+    assert not np.array_equal(
+        later[0][0], Drill.from_dict({**settings, "seed": 4}).batch(7, 16)[0]
+    )  # another seed
     assert later[0][0].dtype == np.int64 and later[0][1].dtype == bool
     assert later[0][0].shape == (16, drill.length) and later[0][1].shape == (16, drill.length - 1)
     assert later[0][0].min() >= 0 and later[0][0].max() < drill.vocab_size
@@ -130,7 +145,7 @@ def test_the_loss_mask_covers_exactly_the_answer_positions(settings):
     everything = Drill.from_dict({**settings, "loss_on": "all"})
     all_tokens, all_mask = everything.batch(2, 32)
     assert np.array_equal(all_tokens, tokens) and all_mask.all()
-    held_tokens, held_mask = everything.held_out(16)  # held-out accuracy is on answers, whatever the loss
+    _, held_mask = everything.held_out(16)  # held-out accuracy is on answers, whatever the loss
     assert np.array_equal(held_mask, drill.held_out(16)[1])
     assert expected_answers(drill) * 16 == held_mask.sum()
 
@@ -157,8 +172,12 @@ def test_closed_forms_match_the_harmonic_numbers():
     # H_n / n for the elimination guesser over a full permutation (a sum by hand: H_8 = 761/280).
     full = Drill.from_dict({"kind": "recall", "n_pairs": 8, "n_queries": 8})
     assert full.copy_level == pytest.approx(761 / 280 / 8, abs=1e-12)
-    assert Drill.from_dict({"kind": "recall", "query_sampling": "replacement"}).copy_level == pytest.approx(1 / 8)
-    assert Drill.from_dict({"kind": "induction", "span_len": 5}).copy_level == pytest.approx((1 + 1 / 2 + 1 / 3 + 1 / 4) / 4)
+    assert Drill.from_dict({"kind": "recall", "query_sampling": "replacement"}).copy_level == pytest.approx(
+        1 / 8
+    )
+    assert Drill.from_dict({"kind": "induction", "span_len": 5}).copy_level == pytest.approx(
+        (1 + 1 / 2 + 1 / 3 + 1 / 4) / 4
+    )
     cycles = Drill.from_dict({"kind": "recall", "n_pairs": 4, "n_queries": 6, "query_sampling": "cycles"})
     assert cycles.copy_level == pytest.approx((1 / 4 + 1 / 3 + 1 / 2 + 1 + 1 / 4 + 1 / 3) / 6)
 
@@ -181,7 +200,11 @@ def blind_guesses(drill: Drill, tokens: np.ndarray, mask: np.ndarray, rng: np.ra
             pools = []
             for j, t in enumerate(targets):
                 round_start = 0 if cfg.query_sampling == "permutation" else j - j % cfg.n_pairs
-                asked = [] if cfg.query_sampling == "replacement" else [row[targets[i] + 1] for i in range(round_start, j)]
+                asked = (
+                    []
+                    if cfg.query_sampling == "replacement"
+                    else [row[targets[i] + 1] for i in range(round_start, j)]
+                )
                 pools.append([v for v in values if v not in asked])
         for t, pool in zip(targets, pools):
             pred[b, t] = pool[rng.integers(len(pool))]
@@ -277,27 +300,30 @@ def test_describe_renders_one_word_per_token():
 # ----------------------------------------------------------------------------- refusals
 
 
-@pytest.mark.parametrize("overrides, key", [
-    ({"kind": "recal"}, "kind"),
-    ({"kind": "recall", "loss_on": "queries"}, "loss_on"),
-    ({"kind": "recall", "query_sampling": "random"}, "query_sampling"),
-    ({"kind": "recall", "seed": -1}, "seed"),
-    ({"kind": "recall", "n_pairs": 0}, "n_pairs"),
-    ({"kind": "recall", "n_pairs": 2.5}, "n_pairs"),
-    ({"kind": "recall", "n_pairs": True}, "n_pairs"),
-    ({"kind": "recall", "n_keys": 4}, "n_keys"),
-    ({"kind": "recall", "n_values": 4}, "n_values"),
-    ({"kind": "recall", "n_queries": 9}, "n_queries"),
-    ({"kind": "noisy_recall", "lookalikes": 2}, "lookalikes"),
-    ({"kind": "noisy_recall", "filler_len": -1}, "filler_len"),
-    ({"kind": "noisy_recall", "n_suffixes": 1}, "n_suffixes"),
-    ({"kind": "noisy_recall", "lookalikes": 0, "n_keys": 4}, "n_keys"),
-    ({"kind": "induction", "span_len": 1}, "span_len"),
-    ({"kind": "induction", "span_len": 40}, "window"),
-    ({"kind": "induction", "n_symbols": 8}, "n_symbols"),
-    ({"kind": "recall", "colour": 3}, "colour"),
-    ({"n_pairs": 3}, "kind"),
-])
+@pytest.mark.parametrize(
+    "overrides, key",
+    [
+        ({"kind": "recal"}, "kind"),
+        ({"kind": "recall", "loss_on": "queries"}, "loss_on"),
+        ({"kind": "recall", "query_sampling": "random"}, "query_sampling"),
+        ({"kind": "recall", "seed": -1}, "seed"),
+        ({"kind": "recall", "n_pairs": 0}, "n_pairs"),
+        ({"kind": "recall", "n_pairs": 2.5}, "n_pairs"),
+        ({"kind": "recall", "n_pairs": True}, "n_pairs"),
+        ({"kind": "recall", "n_keys": 4}, "n_keys"),
+        ({"kind": "recall", "n_values": 4}, "n_values"),
+        ({"kind": "recall", "n_queries": 9}, "n_queries"),
+        ({"kind": "noisy_recall", "lookalikes": 2}, "lookalikes"),
+        ({"kind": "noisy_recall", "filler_len": -1}, "filler_len"),
+        ({"kind": "noisy_recall", "n_suffixes": 1}, "n_suffixes"),
+        ({"kind": "noisy_recall", "lookalikes": 0, "n_keys": 4}, "n_keys"),
+        ({"kind": "induction", "span_len": 1}, "span_len"),
+        ({"kind": "induction", "span_len": 40}, "window"),
+        ({"kind": "induction", "n_symbols": 8}, "n_symbols"),
+        ({"kind": "recall", "colour": 3}, "colour"),
+        ({"n_pairs": 3}, "kind"),
+    ],
+)
 def test_bad_values_are_refused_in_one_line_naming_the_key(overrides, key):
     with pytest.raises(ValueError) as err:
         Drill.from_dict(overrides)

@@ -80,12 +80,15 @@ def test_a_hand_built_lookup_scores_one_and_puts_all_weight_on_the_pair(kind):
 @pytest.mark.parametrize("block", [StandardAttention, DifferentialAttention])
 def test_shares_of_a_real_decoder_are_bounded_and_sum_to_one(block):
     drill = Drill.from_dict(SETTINGS["noisy_recall"])
-    model = Decoder(drill.vocab_size, 32, 2, drill.length - 1,
-                    lambda i: block(32, layer_index=i, n_layers=2, head_dim=8))
+    model = Decoder(
+        drill.vocab_size, 32, 2, drill.length - 1, lambda i: block(32, layer_index=i, n_layers=2, head_dim=8)
+    )
     out = drill_attention(model, drill.items(20), "cpu")
     assert model.training  # mode restored
     for layer in range(2):
-        shares = [out[f"drill_attention/layer{layer}/{k}_share"] for k in ("pair", "lookalike", "filler", "other")]
+        shares = [
+            out[f"drill_attention/layer{layer}/{k}_share"] for k in ("pair", "lookalike", "filler", "other")
+        ]
         assert sum(shares) == pytest.approx(1.0, abs=1e-9) and all(0.0 <= v <= 1.0 for v in shares)
         assert min(shares) > 0.0  # an untrained map spreads weight over every category
     assert 0.0 <= drill_accuracy(model, drill, 64) <= 1.0
@@ -95,7 +98,10 @@ def test_a_kind_without_lookalikes_or_filler_reports_zero_for_them():
     drill = Drill.from_dict(SETTINGS["recall"])
     model = Decoder(drill.vocab_size, 32, 1, drill.length - 1, lambda i: StandardAttention(32, head_dim=8))
     out = drill_attention(model, drill.items(8), "cpu")
-    assert out["drill_attention/layer0/lookalike_share"] == 0.0 and out["drill_attention/layer0/filler_share"] == 0.0
+    assert (
+        out["drill_attention/layer0/lookalike_share"] == 0.0
+        and out["drill_attention/layer0/filler_share"] == 0.0
+    )
 
 
 class FixedMap(nn.Module):
@@ -121,8 +127,11 @@ class FixedModel(nn.Module):
 
 
 def test_a_signed_two_head_map_gives_the_shares_worked_out_by_hand():
-    item = {"tokens": [0, 1, 2, 0, 1, 2], "answer_positions": [4],
-            "spans": [{"pair": [1, 3], "lookalike": [[3, 4]], "filler": [[0, 1]]}]}
+    item = {
+        "tokens": [0, 1, 2, 0, 1, 2],
+        "answer_positions": [4],
+        "spans": [{"pair": [1, 3], "lookalike": [[3, 4]], "filler": [[0, 1]]}],
+    }
     out = drill_attention(FixedModel(), [item, item])
     # head 0: |row| sums to 1.0 -> pair 0.5, look-alike 0.3, filler 0.1, other 0.1; head 1: other 1.0.
     expected = {"pair": 0.25, "lookalike": 0.15, "filler": 0.05, "other": 0.55}

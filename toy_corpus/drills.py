@@ -43,19 +43,19 @@ HELD_OUT_SPAWN_KEY = 1
 class DrillConfig:
     kind: str
     seed: int = 0
-    loss_on: str = "answers"          # "answers": loss on answer positions only; "all": every target
-    n_pairs: int = 8                  # recall, noisy_recall: key/value pairs in the context
-    n_keys: int = 64                  # recall: key symbols; noisy_recall: first-token symbols
-    n_values: int = 64                # recall, noisy_recall: value symbols
-    n_queries: int = 8                # recall, noisy_recall: queries after the separator
+    loss_on: str = "answers"  # "answers": loss on answer positions only; "all": every target
+    n_pairs: int = 8  # recall, noisy_recall: key/value pairs in the context
+    n_keys: int = 64  # recall: key symbols; noisy_recall: first-token symbols
+    n_values: int = 64  # recall, noisy_recall: value symbols
+    n_queries: int = 8  # recall, noisy_recall: queries after the separator
     query_sampling: str = "permutation"  # permutation | replacement | cycles
-    filler_len: int = 2               # noisy_recall: filler tokens after every pair
-    n_filler: int = 16                # noisy_recall: filler symbols
-    lookalikes: int = 1               # noisy_recall: other context keys sharing each key's first token
-    n_suffixes: int = 16              # noisy_recall: second-token symbols
-    span_len: int = 8                 # induction: tokens in the repeated span
-    window: int = 32                  # induction: tokens per sequence (T + 1)
-    n_symbols: int = 16               # induction: vocabulary
+    filler_len: int = 2  # noisy_recall: filler tokens after every pair
+    n_filler: int = 16  # noisy_recall: filler symbols
+    lookalikes: int = 1  # noisy_recall: other context keys sharing each key's first token
+    n_suffixes: int = 16  # noisy_recall: second-token symbols
+    span_len: int = 8  # induction: tokens in the repeated span
+    window: int = 32  # induction: tokens per sequence (T + 1)
+    n_symbols: int = 16  # induction: vocabulary
 
     def check(self) -> None:
         """Raises ``ValueError`` with one line naming ``data.<key>`` and what is allowed."""
@@ -63,8 +63,17 @@ class DrillConfig:
         _check_choice("loss_on", self.loss_on, LOSS_ON)
         _check_choice("query_sampling", self.query_sampling, QUERY_SAMPLINGS)
         _check_int("seed", self.seed, 0)
-        for name in ("n_pairs", "n_keys", "n_values", "n_queries", "n_filler", "n_suffixes", "span_len",
-                     "window", "n_symbols"):
+        for name in (
+            "n_pairs",
+            "n_keys",
+            "n_values",
+            "n_queries",
+            "n_filler",
+            "n_suffixes",
+            "span_len",
+            "window",
+            "n_symbols",
+        ):
             _check_int(name, getattr(self, name), 1)
         _check_int("filler_len", self.filler_len, 0)
         _check_int("lookalikes", self.lookalikes, 0)
@@ -81,16 +90,28 @@ class DrillConfig:
         if self.kind == "recall":
             _check_int("n_keys", self.n_keys, n, f"data.n_pairs={n} (keys are distinct)")
         if self.query_sampling == "permutation" and self.n_queries > n:
-            raise ValueError(f"data.n_queries={self.n_queries}: must be <= data.n_pairs={n} under "
-                             f"query_sampling=permutation; allowed: 1..{n} (or query_sampling=cycles)")
+            raise ValueError(
+                f"data.n_queries={self.n_queries}: must be <= data.n_pairs={n} under "
+                f"query_sampling=permutation; allowed: 1..{n} (or query_sampling=cycles)"
+            )
 
     def _check_noisy(self) -> None:
         g = self.lookalikes + 1
-        if self.n_pairs % g:
-            raise ValueError(f"data.lookalikes={self.lookalikes}: lookalikes + 1 must divide data.n_pairs="
-                             f"{self.n_pairs}; allowed: {[d - 1 for d in range(1, self.n_pairs + 1) if self.n_pairs % d == 0]}")
-        _check_int("n_keys", self.n_keys, self.n_pairs // g, f"the {self.n_pairs // g} key groups (distinct first tokens)")
-        _check_int("n_suffixes", self.n_suffixes, g, f"lookalikes + 1 = {g} (distinct second tokens in a group)")
+        n = self.n_pairs
+        if n % g:
+            raise ValueError(
+                f"data.lookalikes={self.lookalikes}: lookalikes + 1 must divide data.n_pairs="
+                f"{self.n_pairs}; allowed: {[d - 1 for d in range(1, n + 1) if n % d == 0]}"
+            )
+        _check_int(
+            "n_keys",
+            self.n_keys,
+            self.n_pairs // g,
+            f"the {self.n_pairs // g} key groups (distinct first tokens)",
+        )
+        _check_int(
+            "n_suffixes", self.n_suffixes, g, f"lookalikes + 1 = {g} (distinct second tokens in a group)"
+        )
 
     def _check_induction(self) -> None:
         m = self.span_len
@@ -101,7 +122,9 @@ class DrillConfig:
 
 def _check_choice(name: str, value, allowed: tuple[str, ...]) -> None:
     if value not in allowed:
-        raise ValueError(f"data.{name}={value!r}: must be one of the named choices; allowed: {', '.join(allowed)}")
+        raise ValueError(
+            f"data.{name}={value!r}: must be one of the named choices; allowed: {', '.join(allowed)}"
+        )
 
 
 def _check_int(name: str, value, low: int, why: str | None = None) -> None:
@@ -133,7 +156,9 @@ def elimination_level(n: int, q: int, sampling: str) -> float:
     return float(np.mean([1.0 / (n - (j % n)) for j in range(q)]))
 
 
-def excluding(rng: np.random.Generator, shape: tuple[int, int], pool: int, excluded: np.ndarray) -> np.ndarray:
+def excluding(
+    rng: np.random.Generator, shape: tuple[int, int], pool: int, excluded: np.ndarray
+) -> np.ndarray:
     """Uniform ids from ``range(pool)`` minus each row's ``excluded`` ids: draw r in
     [0, pool - k) and step it past the excluded ids in ascending order."""
     x = rng.integers(0, pool - excluded.shape[1], size=shape)
@@ -309,7 +334,9 @@ class Drill:
         """int64 tokens ``[B, T + 1]`` and bool mask ``[B, T]`` over target positions (tokens[:, 1:])."""
         _check_count("step", step, 0)
         _check_count("batch_size", batch_size, 1)
-        tokens, targets, _ = self._kind.generate(np.random.default_rng([self.cfg.seed, int(step)]), int(batch_size))
+        tokens, targets, _ = self._kind.generate(
+            np.random.default_rng([self.cfg.seed, int(step)]), int(batch_size)
+        )
         return tokens, self._mask(targets, self.cfg.loss_on)
 
     def _held(self, n: int) -> tuple[np.ndarray, np.ndarray, dict]:
@@ -330,15 +357,22 @@ class Drill:
         out = []
         for b in range(n):
             t = [int(x) for x in targets[b]]
-            out.append({"tokens": tokens[b].tolist(), "answer_positions": t,
-                        "answer_spans": [[p + 1, p + 2] for p in t],
-                        "spans": [self._kind.spans(meta, b, a) for a in range(len(t))]})
+            out.append(
+                {
+                    "tokens": tokens[b].tolist(),
+                    "answer_positions": t,
+                    "answer_spans": [[p + 1, p + 2] for p in t],
+                    "spans": [self._kind.spans(meta, b, a) for a in range(len(t))],
+                }
+            )
         return out
 
     def describe(self, tokens) -> str:
         row = np.asarray(tokens)
         if row.ndim != 1 or len(row) != self.length:
-            raise ValueError(f"describe: tokens must be one sequence of {self.length} ids, got shape {row.shape}")
+            raise ValueError(
+                f"describe: tokens must be one sequence of {self.length} ids, got shape {row.shape}"
+            )
         return " ".join(self._kind.name(int(t)) for t in row)
 
 
@@ -354,10 +388,15 @@ def accuracy(predictions: np.ndarray, tokens: np.ndarray, mask: np.ndarray) -> f
     ``mask``: bool ``[B, T]``.
     """
     predictions, tokens, mask = np.asarray(predictions), np.asarray(tokens), np.asarray(mask, dtype=bool)
-    if tokens.ndim != 2 or predictions.shape != (tokens.shape[0], tokens.shape[1] - 1) or mask.shape != predictions.shape:
-        raise ValueError(f"accuracy: predictions {predictions.shape} and mask {mask.shape} must be [B, T] for tokens "
-                         f"{tokens.shape} = [B, T + 1]")
+    if (
+        tokens.ndim != 2
+        or predictions.shape != (tokens.shape[0], tokens.shape[1] - 1)
+        or mask.shape != predictions.shape
+    ):
+        raise ValueError(
+            f"accuracy: predictions {predictions.shape} and mask {mask.shape} must be [B, T] for tokens "
+            f"{tokens.shape} = [B, T + 1]"
+        )
     if not mask.any():
         raise ValueError("accuracy: the mask selects no position")
     return float((predictions == tokens[:, 1:])[mask].mean())
-

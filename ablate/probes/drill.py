@@ -39,7 +39,10 @@ def drill_accuracy(model: nn.Module, drill, n_items: int, device="cpu") -> float
     tokens, mask = drill.held_out(n_items)
     inputs = torch.as_tensor(tokens[:, :-1])
     with evaluating(model):
-        pred = [model(inputs[i : i + BATCH].to(device)).argmax(-1).cpu().numpy() for i in range(0, len(inputs), BATCH)]
+        pred = [
+            model(inputs[i : i + BATCH].to(device)).argmax(-1).cpu().numpy()
+            for i in range(0, len(inputs), BATCH)
+        ]
     return accuracy(np.concatenate(pred), tokens, mask)
 
 
@@ -48,7 +51,11 @@ def key_categories(item: dict, width: int) -> np.ndarray:
     a key in several spans takes the first category in that order."""
     out = np.full((len(item["answer_positions"]), width), 3, dtype=np.int64)
     for a, spans in enumerate(item["spans"]):
-        for cat, ranges in ((2, spans.get("filler", [])), (1, spans.get("lookalike", [])), (0, [spans["pair"]])):
+        for cat, ranges in (
+            (2, spans.get("filler", [])),
+            (1, spans.get("lookalike", [])),
+            (0, [spans["pair"]]),
+        ):
             for s, e in ranges:
                 out[a, max(0, int(s)) : min(width, int(e))] = cat
     return out
@@ -69,8 +76,10 @@ def check_drill_items(items: Sequence[dict]) -> None:
             if key not in it:
                 raise ValueError(f"drill attention probe: item {k} has no {key!r} (use Drill.items)")
         if len(it["answer_positions"]) != len(it["spans"]):
-            raise ValueError(f"drill attention probe: item {k} has {len(it['answer_positions'])} answers but "
-                             f"{len(it['spans'])} span sets")
+            raise ValueError(
+                f"drill attention probe: item {k} has {len(it['answer_positions'])} answers but "
+                f"{len(it['spans'])} span sets"
+            )
 
 
 def drill_attention(model: nn.Module, items: Sequence[dict], device="cpu") -> dict[str, float]:
@@ -87,7 +96,9 @@ def drill_attention(model: nn.Module, items: Sequence[dict], device="cpu") -> di
         for start in range(0, len(items), BATCH):
             chunk = items[start : start + BATCH]
             model(inputs[start : start + BATCH].to(device))
-            rows = [bounded_rows(m.attention_weights(x)).double().cpu().numpy() for m, x in zip(modules, captured)]
+            rows = [
+                bounded_rows(m.attention_weights(x)).double().cpu().numpy() for m, x in zip(modules, captured)
+            ]
             for b, it in enumerate(chunk):
                 cats = key_categories(it, inputs.shape[1])
                 for a, t in enumerate(it["answer_positions"]):
@@ -95,5 +106,8 @@ def drill_attention(model: nn.Module, items: Sequence[dict], device="cpu") -> di
                         totals[layer] += row_shares(r[b, t], cats[a], int(t))
                     count += 1
     mean = totals / count
-    return {f"drill_attention/layer{i}/{name}_share": float(mean[i, j])
-            for i in range(len(modules)) for j, name in enumerate(SHARES)}
+    return {
+        f"drill_attention/layer{i}/{name}_share": float(mean[i, j])
+        for i in range(len(modules))
+        for j, name in enumerate(SHARES)
+    }

@@ -62,7 +62,7 @@ def test_every_probe_key_is_produced_and_finite(block):
                 "position/loss_pos0_16", "position/loss_pos48_64", "quantization/loss_fp32", "quantization/increase_w4",
                 "quantization/increase_a8", "attention/n_items", "probe_seconds/total", "probe_seconds/images"}
     for layer in range(2):
-        for k in ("asked_mass", "distractor_mass", "other_mass", "asked_to_distractor"):
+        for k in ("asked_share", "distractor_share", "other_share"):
             expected.add(f"attention/layer{layer}/{k}")
         for k in ("logit_top1_ratio", "logit_top10_ratio", "hidden_top1_ratio", "hidden_top10_ratio", "hidden_kurtosis"):
             expected.add(f"outliers/layer{layer}/{k}")

@@ -244,3 +244,15 @@ def test_differential_declared_flops_are_the_full_window_convention():
     h, d = block.n_heads, block.head_dim
     for seq_len in (64, 256):
         assert block.core_flops_per_token(seq_len) == 12 * seq_len * h * d
+
+
+def test_full_window_context_gives_one_range_and_the_same_output():
+    from ablate.attention.common import causal_chunks, full_window_products
+
+    block = DifferentialAttention(D_MODEL, 1, 4, HEAD_DIM)
+    x = torch.randn(1, 200, D_MODEL)
+    chunked = block(x)
+    with full_window_products():
+        assert causal_chunks(200) == [(0, 200)]
+        assert (block(x) - chunked).abs().max().item() <= 1e-5
+    assert len(causal_chunks(200)) == 4  # back to chunks outside the context

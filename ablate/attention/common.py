@@ -2,7 +2,24 @@
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
+
 import torch
+
+_FULL_WINDOW = contextvars.ContextVar("full_window", default=False)
+
+
+@contextlib.contextmanager
+def full_window_products():
+    """Inside this context :func:`causal_chunks` returns one range, so chunked blocks compute the
+    full window as a dense kernel does: the counterpart of forcing the math SDPA backend, used
+    where torch's FLOP counter must see the nominal products (``tests/test_compute.py``)."""
+    token = _FULL_WINDOW.set(True)
+    try:
+        yield
+    finally:
+        _FULL_WINDOW.reset(token)
 
 
 def require_divisible(name: str, value: int, divisor: int, what: str) -> None:
@@ -44,7 +61,9 @@ def causal_chunks(time: int, min_len: int = 32, max_chunks: int = 4) -> list[tup
     over later keys are all masked. With ``c`` equal ranges the score and value products cover
     ``(c + 1) / (2c)`` of the full window (5/8 for 4 ranges); more ranges skip more but cost more
     calls, and ``min_len`` 32 / ``max_chunks`` 4 were the fastest on CPU at seq_len 64 and 256
-    (PERFORMANCE.md).
+    (PERFORMANCE.md). Inside :func:`full_window_products` it returns ``[(0, time)]``.
     """
+    if _FULL_WINDOW.get():
+        return [(0, time)]
     length = max(min_len, -(-time // max_chunks))
     return [(start, min(start + length, time)) for start in range(0, time, length)]

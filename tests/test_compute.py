@@ -5,7 +5,6 @@ import torch
 from torch.nn.attention import SDPBackend, sdpa_kernel
 
 from ablate.attention.common import full_window_products
-
 from ablate.compute import (
     account,
     compare,

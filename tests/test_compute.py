@@ -4,6 +4,7 @@ import pytest
 import torch
 from torch.nn.attention import SDPBackend, sdpa_kernel
 
+from ablate.attention.common import full_window_products
 from ablate.compute import (
     account,
     ratios,
@@ -42,9 +43,10 @@ def test_non_embedding_params_closed_form_and_kaplan(attention):
 @pytest.mark.parametrize("attention", NAMED_ATTENTION)
 def test_flops_per_token_match_torch_flop_counter(attention):
     # Reference: torch.utils.flop_counter.FlopCounterMode on one forward+backward pass. The math
-    # SDPA backend is forced because the counter does not see inside the fused CPU kernel.
+    # SDPA backend is forced because the counter does not see inside the fused CPU kernel, and
+    # the differential block's causal chunks are turned off: both then run the nominal full window.
     model = tiny(attention, "model.seq_len=128")
-    with sdpa_kernel(SDPBackend.MATH):
+    with sdpa_kernel(SDPBackend.MATH), full_window_products():
         measured = measure_flops_per_token(model)
     assert abs(account(model).flops_per_token / measured - 1) <= 0.02
 

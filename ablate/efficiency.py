@@ -27,7 +27,8 @@ below the baseline's fitted floor E_b, no finite x_b exists and R = 0 (the limit
 Interval: bootstrap over seeds, resampled jointly. Seeds are paired (same seed = same data order
 in every cell), so each resample draws n seed indices with replacement from the n seeds and uses
 those seeds in every cell of both curves; both curves are refitted (same curve kind as the
-full-data fit) and R(x_mid) recomputed; the 95% interval is the 2.5 and 97.5 percentiles of the draws after their deviations from the
+full-data fit) and R(x_mid) recomputed; the 95% interval is the 2.5 and 97.5 percentiles of the
+draws after their deviations from the
 point estimate are widened by sqrt(n / (n - 1)) (resampling n of n seeds shrinks the spread by
 that factor; the usual small-sample correction, from memory). Below
 5 seeds the interval is labelled approximate (the percentile bootstrap of few seeds runs narrow: in
@@ -126,7 +127,9 @@ def _starting_point(u, y) -> tuple[float, float, float]:
         if sse < best_sse:
             best, best_sse = (float(floor), float(amplitude), float(alpha)), sse
     if best is None:
-        raise IllConditioned("no starting point with 0 <= E < min(loss) and A > 0 (loss does not fall with x)")
+        raise IllConditioned(
+            "no starting point with 0 <= E < min(loss) and A > 0 (loss does not fall with x)"
+        )
     return best
 
 
@@ -192,15 +195,23 @@ def refit(curve: LossCurve, x, y) -> LossCurve:
     p0 = (curve.floor, curve.amplitude, curve.exponent)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", OptimizeWarning)
-        params, _ = curve_fit(_model, u, y, p0=p0, jac=_jacobian, method="lm", maxfev=2000,
-                              check_finite=False)
+        params, _ = curve_fit(
+            _model, u, y, p0=p0, jac=_jacobian, method="lm", maxfev=2000, check_finite=False
+        )
         floor, amplitude, exponent = (float(v) for v in params)
         if not (0.0 <= floor and amplitude > 0 and ALPHA_BOUNDS[0] <= exponent <= ALPHA_BOUNDS[1]):
             # Left the admissible region unconstrained: redo with bounds.
             upper = [float(y.min()), np.inf, ALPHA_BOUNDS[1]]
             start = np.clip(p0, [0.0, 0.0, ALPHA_BOUNDS[0]], [upper[0] * (1 - 1e-9), np.inf, upper[2]])
-            params, _ = curve_fit(_model, u, y, p0=start, jac=_jacobian,
-                                  bounds=([0.0, 0.0, ALPHA_BOUNDS[0]], upper), max_nfev=2000)
+            params, _ = curve_fit(
+                _model,
+                u,
+                y,
+                p0=start,
+                jac=_jacobian,
+                bounds=([0.0, 0.0, ALPHA_BOUNDS[0]], upper),
+                max_nfev=2000,
+            )
     return LossCurve(POWER_LAW, *(float(v) for v in params), curve.x_ref)
 
 
@@ -245,23 +256,27 @@ class Comparison:
             return f"{self.candidate} vs {self.baseline}: not determined by this sweep ({self.reason})"
         noun = AXIS_NOUNS[self.axis]
         label = "approximate 95% CI" if self.approximate else "95% CI"
-        return (f"{self.candidate} reaches {self.baseline}'s loss with {100 * self.ratio:.0f}% "
-                f"({label} {100 * self.ci_low:.0f}-{100 * self.ci_high:.0f}%) of its {noun} at this scale")
+        return (
+            f"{self.candidate} reaches {self.baseline}'s loss with {100 * self.ratio:.0f}% "
+            f"({label} {100 * self.ci_low:.0f}-{100 * self.ci_high:.0f}%) of its {noun} at this scale"
+        )
 
 
 Cells = dict  # x value -> {seed: final loss} (or a 1-d array, seeds by position)
 
 
 def _by_seed(cells: Cells) -> dict[float, dict]:
-    return {float(x): (dict(v) if isinstance(v, dict) else dict(enumerate(np.asarray(v, dtype=float).tolist())))
-            for x, v in cells.items()}
+    return {
+        float(x): (dict(v) if isinstance(v, dict) else dict(enumerate(np.asarray(v, dtype=float).tolist())))
+        for x, v in cells.items()
+    }
 
 
 def _stack(cells: Cells, seeds=None) -> tuple[np.ndarray, np.ndarray]:
     """(x, loss) arrays; with ``seeds``, one point per drawn seed the cell holds (repeats kept)."""
     xs, ys = [], []
     for x, per_seed in sorted(_by_seed(cells).items()):
-        for seed in (per_seed if seeds is None else [s for s in seeds if s in per_seed]):
+        for seed in per_seed if seeds is None else [s for s in seeds if s in per_seed]:
             xs.append(x)
             ys.append(float(per_seed[seed]))
     return np.array(xs, dtype=float), np.array(ys, dtype=float)
@@ -276,20 +291,31 @@ def check_pair(baseline: LossCurve, candidate: LossCurve, x_mid: float, swept: t
             return f"the {who}'s loss does not fall with x (fitted exponent {curve.exponent:.3g})"
     needed = float(baseline.x_for_loss(candidate.loss(x_mid)))
     if not swept[0] <= needed <= swept[1]:
-        return (f"the baseline would need x = {needed:.3g} for the candidate's loss at {x_mid:.3g}, "
-                f"outside its swept range {swept[0]:.3g}-{swept[1]:.3g}")
+        return (
+            f"the baseline would need x = {needed:.3g} for the candidate's loss at {x_mid:.3g}, "
+            f"outside its swept range {swept[0]:.3g}-{swept[1]:.3g}"
+        )
     return ""
 
 
-def bootstrap_ratio(baseline_cells: Cells, candidate_cells: Cells, baseline_fit: LossCurve,
-                    candidate_fit: LossCurve, x_points, resamples: int = 1000, seed: int = 0):
+def bootstrap_ratio(
+    baseline_cells: Cells,
+    candidate_cells: Cells,
+    baseline_fit: LossCurve,
+    candidate_fit: LossCurve,
+    x_points,
+    resamples: int = 1000,
+    seed: int = 0,
+):
     """Bootstrap R at ``x_points`` (x_points[0] = x_mid), seeds resampled jointly across all cells.
 
     Returns (ratios of the draws that pass :func:`check_pair`, [kept, points]; number failed).
     """
     rng = np.random.default_rng(seed)
     x_points = np.atleast_1d(np.asarray(x_points, dtype=float))
-    seeds = sorted({s for cells in (baseline_cells, candidate_cells) for v in _by_seed(cells).values() for s in v})
+    seeds = sorted(
+        {s for cells in (baseline_cells, candidate_cells) for v in _by_seed(cells).values() for s in v}
+    )
     swept = (min(baseline_cells), max(baseline_cells))
     kept, failed = [], 0
     for _ in range(resamples):
@@ -313,9 +339,13 @@ def _matched_fits(baseline_name, baseline_cells, candidate_name, candidate_cells
     # Compare like with like: when one curve had to fall back, both use the log-log line.
     if base_fit.kind != cand_fit.kind:
         if base_fit.kind == POWER_LAW:
-            base_fit = fit_log_line(*_stack(baseline_cells), note=f"log-log line to match {candidate_name}'s fallback")
+            base_fit = fit_log_line(
+                *_stack(baseline_cells), note=f"log-log line to match {candidate_name}'s fallback"
+            )
         else:
-            cand_fit = fit_log_line(*_stack(candidate_cells), note=f"log-log line to match {baseline_name}'s fallback")
+            cand_fit = fit_log_line(
+                *_stack(candidate_cells), note=f"log-log line to match {baseline_name}'s fallback"
+            )
     return base_fit, cand_fit
 
 
@@ -327,8 +357,27 @@ def _undetermined_reason(failed: int, resamples: int, low: float, high: float) -
     return ""
 
 
-def compare(baseline_name: str, baseline_cells: Cells, candidate_name: str, candidate_cells: Cells,
-            axis: str, resamples: int = 1000, seed: int = 0, level: float = 0.95) -> tuple[Comparison, LossCurve, LossCurve]:
+def _fill_interval(result: Comparison, draws: np.ndarray, n_all: int, level: float) -> None:
+    """Percentile interval of the draws, widened by sqrt(n / (n - 1)) about the point estimate
+    (resampling n of n seeds shrinks the spread by sqrt((n - 1) / n))."""
+    tail = 100 * (1 - level) / 2
+    point = np.concatenate([[result.ratio], result.grid_ratio])
+    draws = point + (draws - point) * math.sqrt(n_all / max(n_all - 1, 1))
+    low, high = np.percentile(draws, [tail, 100 - tail], axis=0)
+    result.ci_low, result.ci_high = float(low[0]), float(high[0])
+    result.grid_low, result.grid_high = low[1:], high[1:]
+
+
+def compare(
+    baseline_name: str,
+    baseline_cells: Cells,
+    candidate_name: str,
+    candidate_cells: Cells,
+    axis: str,
+    resamples: int = 1000,
+    seed: int = 0,
+    level: float = 0.95,
+) -> tuple[Comparison, LossCurve, LossCurve]:
     """Fit both curves, the ratio at the candidate's middle x, its joint-seed bootstrap interval,
     and whether the sweep determines it (see the module docstring)."""
     if axis not in AXIS_NOUNS:
@@ -341,8 +390,9 @@ def compare(baseline_name: str, baseline_cells: Cells, candidate_name: str, cand
     x_mid = geometric_middle(xs)
     grid = np.geomspace(xs.min(), xs.max(), 40)
     n_seeds = min(len(v) for cells in (baseline_cells, candidate_cells) for v in _by_seed(cells).values())
-    result = Comparison(axis, baseline_name, candidate_name, x_mid, math.nan, math.nan, math.nan,
-                        resamples, 0, n_seeds, grid_x=grid)
+    nan = math.nan
+    result = Comparison(axis, baseline_name, candidate_name, x_mid, nan, nan, nan, resamples, 0, n_seeds,
+                        grid_x=grid)
     reason = check_pair(base_fit, cand_fit, x_mid, (min(baseline_cells), max(baseline_cells)))
     if reason:
         result.determined, result.reason = False, reason
@@ -350,18 +400,16 @@ def compare(baseline_name: str, baseline_cells: Cells, candidate_name: str, cand
     result.ratio = float(size_ratio(base_fit, cand_fit, x_mid))
     result.needed_x = float(base_fit.x_for_loss(cand_fit.loss(x_mid)))
     result.grid_ratio = size_ratio(base_fit, cand_fit, grid)
-    draws, result.failed_resamples = bootstrap_ratio(baseline_cells, candidate_cells, base_fit, cand_fit,
-                                                     np.concatenate([[x_mid], grid]), resamples, seed)
+    draws, result.failed_resamples = bootstrap_ratio(
+        baseline_cells, candidate_cells, base_fit, cand_fit, np.concatenate([[x_mid], grid]), resamples, seed
+    )
     if draws.shape[0] == 0:
         result.determined, result.reason = False, f"all {resamples} bootstrap draws failed a check"
         return result, base_fit, cand_fit
-    tail = 100 * (1 - level) / 2
-    n_all = len({k for cells in (baseline_cells, candidate_cells) for v in _by_seed(cells).values() for k in v})
-    point = np.concatenate([[result.ratio], result.grid_ratio])
-    # Resampling n of n seeds shrinks the spread by sqrt((n - 1) / n): widen the draws back.
-    draws = point + (draws - point) * math.sqrt(n_all / max(n_all - 1, 1))
-    low, high = np.percentile(draws, [tail, 100 - tail], axis=0)
-    result.ci_low, result.ci_high, result.grid_low, result.grid_high = float(low[0]), float(high[0]), low[1:], high[1:]
+    n_all = len(
+        {k for cells in (baseline_cells, candidate_cells) for v in _by_seed(cells).values() for k in v}
+    )
+    _fill_interval(result, draws, n_all, level)
     result.reason = _undetermined_reason(result.failed_resamples, resamples, result.ci_low, result.ci_high)
     result.determined = not result.reason
     return result, base_fit, cand_fit

@@ -129,14 +129,16 @@ def holm(pvalues) -> np.ndarray:
 def sd_interval(std: float, n: int, level: float = 0.95) -> tuple[float, float]:
     """Chi-square interval of a normal population's SD from a sample SD ``s`` of ``n`` values:
 
-        ( s sqrt((n-1) / chi2_{q, n-1}),  s sqrt((n-1) / chi2_{1-q, n-1}) ),  q = (1 + level) / 2
+    ( s sqrt((n-1) / chi2_{q, n-1}),  s sqrt((n-1) / chi2_{1-q, n-1}) ),  q = (1 + level) / 2
     """
     q = _check_level(level)
     if n < 2:
         raise ValueError(f"need n >= 2 for a spread, got {n}")
     df = n - 1
-    return (std * math.sqrt(df / float(stats.chi2.ppf(q, df))),
-            std * math.sqrt(df / float(stats.chi2.ppf(1.0 - q, df))))
+    return (
+        std * math.sqrt(df / float(stats.chi2.ppf(q, df))),
+        std * math.sqrt(df / float(stats.chi2.ppf(1.0 - q, df))),
+    )
 
 
 def seeds_needed_range(std: float, n: int, halfwidth: float, level: float = 0.95) -> tuple[int, int]:

@@ -80,11 +80,16 @@ def test_ratio_from_fitted_exact_points_matches_closed_form():
     rng = np.random.default_rng(6)
     base = _cells(2.0, 100.0, 0.35, SIZES, 2, 0.0, rng)
     cand = _cells(2.0, 80.0, 0.35, SIZES, 2, 0.0, rng)
-    result, base_fit, cand_fit = compare("standard", base, "differential", cand, "params", resamples=50, seed=0)
+    result, base_fit, cand_fit = compare(
+        "standard", base, "differential", cand, "params", resamples=50, seed=0
+    )
     expected = (80.0 / 100.0) ** (1 / 0.35)
     assert result.ratio == pytest.approx(expected, rel=1e-4)
     # No noise: every resample is the same data, so the interval collapses onto the ratio.
-    assert (result.ci_low, result.ci_high) == (pytest.approx(expected, rel=1e-4), pytest.approx(expected, rel=1e-4))
+    assert (result.ci_low, result.ci_high) == (
+        pytest.approx(expected, rel=1e-4),
+        pytest.approx(expected, rel=1e-4),
+    )
     assert result.x_mid == pytest.approx(np.exp(np.log(SIZES).mean()))
     assert result.determined and result.approximate  # 2 seeds: labelled approximate
     assert "differential reaches standard's loss with 53% (approximate 95% CI" in result.sentence()
@@ -103,7 +108,13 @@ def test_compare_uses_one_curve_kind_for_both():
 def test_compare_refuses_too_few_sizes_and_bad_axis():
     rng = np.random.default_rng(8)
     with pytest.raises(EfficiencyError, match="at least 3 distinct"):
-        compare("a", _cells(2, 100, 0.35, SIZES[:2], 3, 0.0, rng), "b", _cells(2, 80, 0.35, SIZES, 3, 0.0, rng), "params")
+        compare(
+            "a",
+            _cells(2, 100, 0.35, SIZES[:2], 3, 0.0, rng),
+            "b",
+            _cells(2, 80, 0.35, SIZES, 3, 0.0, rng),
+            "params",
+        )
     flat = {float(s): np.full(3, 3.0) for s in SIZES}
     with pytest.raises(EfficiencyError, match="axis"):
         compare("a", flat, "b", flat, "depth")
@@ -121,12 +132,15 @@ def test_flat_sweep_is_not_determined():
     # Loss the same at every size (exponent exactly 0 on noise-free data): no size ratio exists.
     flat = {float(s): np.full(3, 3.0) for s in SIZES}
     rng = np.random.default_rng(12)
-    result, base_fit, _ = compare("a", flat, "b", _cells(2.0, 80.0, 0.35, SIZES, 3, 0.0, rng), "params",
-                                  resamples=20)
+    result, base_fit, _ = compare(
+        "a", flat, "b", _cells(2.0, 80.0, 0.35, SIZES, 3, 0.0, rng), "params", resamples=20
+    )
     assert abs(base_fit.exponent) < 1e-12
     assert not result.determined and "does not fall" in result.reason and math.isnan(result.ratio)
     noisy = {float(s): 3.0 + np.random.default_rng(int(s)).normal(0, 0.01, 5) for s in SIZES}
-    result, _, _ = compare("a", noisy, "b", _cells(2.0, 80.0, 0.35, SIZES, 5, 0.002, rng), "params", resamples=50)
+    result, _, _ = compare(
+        "a", noisy, "b", _cells(2.0, 80.0, 0.35, SIZES, 5, 0.002, rng), "params", resamples=50
+    )
     assert not result.determined
 
 
@@ -151,16 +165,26 @@ def test_answer_outside_the_swept_range_is_not_determined():
 
 def _paired_cells(amplitude, seed_effect, rng, noise=0.01):
     """Cells of one design: shared per-seed offset (same data order in every cell) plus own noise."""
-    return {float(s): {k: 2.0 + amplitude * s**-0.35 + e + rng.normal(0, noise) for k, e in enumerate(seed_effect)}
-            for s in SIZES}
+    return {
+        float(s): {
+            k: 2.0 + amplitude * s**-0.35 + e + rng.normal(0, noise) for k, e in enumerate(seed_effect)
+        }
+        for s in SIZES
+    }
 
 
 def test_well_posed_sweep_gives_the_closed_form_ratio():
     # Known E = 2, alpha = 0.35, A = 100 vs 80: R = 0.8^(1/0.35) = 0.529 (closed form).
     rng = np.random.default_rng(14)
     effect = rng.normal(0, 0.01, 6)
-    result, _, _ = compare("a", _paired_cells(100.0, effect, rng, 0.002), "b", _paired_cells(80.0, effect, rng, 0.002),
-                           "params", resamples=100)
+    result, _, _ = compare(
+        "a",
+        _paired_cells(100.0, effect, rng, 0.002),
+        "b",
+        _paired_cells(80.0, effect, rng, 0.002),
+        "params",
+        resamples=100,
+    )
     assert result.determined and not result.approximate
     assert result.ratio == pytest.approx(0.8 ** (1 / 0.35), rel=0.05)
     assert result.ci_low <= 0.8 ** (1 / 0.35) <= result.ci_high
@@ -178,8 +202,15 @@ def test_joint_bootstrap_coverage_of_paired_seeds_is_near_nominal():
     sims, covered = 150, 0
     for sim in range(sims):
         effect = rng.normal(0, 0.01, 10)
-        result, _, _ = compare("a", _paired_cells(100.0, effect, rng), "b", _paired_cells(80.0, effect, rng),
-                               "params", resamples=60, seed=sim)
+        result, _, _ = compare(
+            "a",
+            _paired_cells(100.0, effect, rng),
+            "b",
+            _paired_cells(80.0, effect, rng),
+            "params",
+            resamples=60,
+            seed=sim,
+        )
         covered += result.ci_low <= truth <= result.ci_high
     print(f"joint bootstrap coverage {covered}/{sims}")
     assert 0.90 <= covered / sims <= 0.99

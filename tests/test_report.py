@@ -16,7 +16,7 @@ import pytest
 from scipy import stats as sps
 
 from ablate import records, report
-from ablate.report import load, render, table
+from ablate.report import load, table
 
 ROOT = Path(__file__).resolve().parents[1]
 SEEDS = [0, 1, 2]
@@ -28,10 +28,17 @@ RETRIEVAL = {"standard": 0.5, "differential": 0.8}  # base accuracy, lowered wit
 
 def _summary(attention, seed, **extra):
     base = {
-        "status": "completed", "attention": attention, "seed": seed, "cell": f"attention={attention}",
-        "choices": {"attention": attention}, "params": 1_200_000, "non_embedding_params": 800_000,
-        "flops_per_token": 4.8e6 if attention == "standard" else 5.0e6, "tokens": 2_000_000,
-        "train_flops": (4.8e6 if attention == "standard" else 5.0e6) * 2_000_000, "wall_seconds": 60.0,
+        "status": "completed",
+        "attention": attention,
+        "seed": seed,
+        "cell": f"attention={attention}",
+        "choices": {"attention": attention},
+        "params": 1_200_000,
+        "non_embedding_params": 800_000,
+        "flops_per_token": 4.8e6 if attention == "standard" else 5.0e6,
+        "tokens": 2_000_000,
+        "train_flops": (4.8e6 if attention == "standard" else 5.0e6) * 2_000_000,
+        "wall_seconds": 60.0,
         "budget_match": "tokens",
     }
     base.update(extra)
@@ -54,8 +61,10 @@ def _write_run(folder: Path, summary: dict, curves: dict | None = None, subdir: 
 
 def _curves(attention, seed, final):
     steps = [250_000 * k for k in range(1, 9)]
-    curves = {"loss/val": [(s, final + 3.0 * math.exp(-s / 6e5) + 0.001 * seed) for s in steps],
-              "loss/train": [(s, final + 3.1 * math.exp(-s / 6e5)) for s in steps]}
+    curves = {
+        "loss/val": [(s, final + 3.0 * math.exp(-s / 6e5) + 0.001 * seed) for s in steps],
+        "loss/train": [(s, final + 3.1 * math.exp(-s / 6e5)) for s in steps],
+    }
     if attention == "differential":
         for layer in range(2):
             curves[f"lambda/layer_{layer}"] = [(s, 0.2 + 0.1 * layer - 0.01 * k) for k, s in enumerate(steps)]
@@ -68,13 +77,23 @@ def _probes(attention, i):
         for depth in (0.25, 0.75):
             for distractors in (2, 4):
                 probes[f"retrieval/acc_len{length}_depth{depth}_dist{distractors}"] = round(
-                    RETRIEVAL[attention] - length / 1000 - depth / 10 - distractors / 100 + 0.01 * i, 4)
+                    RETRIEVAL[attention] - length / 1000 - depth / 10 - distractors / 100 + 0.01 * i, 4
+                )
     return probes
 
 
 def _grid_json(root, baseline="attention=standard", **extra):
-    records.write_grid(records.GridRecord(name=root.name, dir=str(root), baseline=baseline, recipe="test_recipe",
-                                          varied=["attention"], seeds=SEEDS, **extra))
+    records.write_grid(
+        records.GridRecord(
+            name=root.name,
+            dir=str(root),
+            baseline=baseline,
+            recipe="test_recipe",
+            varied=["attention"],
+            seeds=SEEDS,
+            **extra,
+        )
+    )
 
 
 @pytest.fixture(scope="module")
@@ -83,18 +102,42 @@ def grid(tmp_path_factory):
     for attention in ("standard", "differential"):
         for i, seed in enumerate(SEEDS):
             loss = LOSSES[attention][i]
-            probes = {**_probes(attention, i), "copy/copy_level": 0.25, "copy/n_items": 100.0,
-                      "probe_seconds/copy": 1.0 + i}
-            _write_run(root / f"attention={attention},seed={seed}",
-                       _summary(attention, seed, final_val_loss=loss, probes=probes),
-                       _curves(attention, seed, loss), subdir="tb" if seed % 2 == 0 else None)
+            probes = {
+                **_probes(attention, i),
+                "copy/copy_level": 0.25,
+                "copy/n_items": 100.0,
+                "probe_seconds/copy": 1.0 + i,
+            }
+            _write_run(
+                root / f"attention={attention},seed={seed}",
+                _summary(attention, seed, final_val_loss=loss, probes=probes),
+                _curves(attention, seed, loss),
+                subdir="tb" if seed % 2 == 0 else None,
+            )
     # Left out: a failed run (no loss) and a diverged run whose large loss would shift any average.
-    _write_run(root / "attention=differential,seed=3",
-               _summary("differential", 3, status="failed", error="RuntimeError: out of memory\nmore lines",
-                        final_val_loss=None, probes={}))
-    _write_run(root / "attention=standard,seed=3",
-               _summary("standard", 3, status="diverged", diverged_at_tokens=750_000, last_finite_loss=7.5,
-                        final_val_loss=50.0, probes={"copy/acc": 0.0}))
+    _write_run(
+        root / "attention=differential,seed=3",
+        _summary(
+            "differential",
+            3,
+            status="failed",
+            error="RuntimeError: out of memory\nmore lines",
+            final_val_loss=None,
+            probes={},
+        ),
+    )
+    _write_run(
+        root / "attention=standard,seed=3",
+        _summary(
+            "standard",
+            3,
+            status="diverged",
+            diverged_at_tokens=750_000,
+            last_finite_loss=7.5,
+            final_val_loss=50.0,
+            probes={"copy/acc": 0.0},
+        ),
+    )
     _grid_json(root, running_elsewhere=["attention=other"])
     return root
 
@@ -124,9 +167,25 @@ def test_csv_header_is_the_documented_one(built):
     _, rows, _, _ = built
     # Written out here, not read from the constant that wrote the file.
     assert list(rows[0].keys()) == [
-        "cell", "metric", "kind", "n", "mean", "ci_low", "ci_high", "reference", "n_paired", "diff_to_baseline",
-        "diff_ci_low", "diff_ci_high", "p_value", "p_holm", "resolution", "seeds_needed_low", "seeds_needed_high",
-        "note"]
+        "cell",
+        "metric",
+        "kind",
+        "n",
+        "mean",
+        "ci_low",
+        "ci_high",
+        "reference",
+        "n_paired",
+        "diff_to_baseline",
+        "diff_ci_low",
+        "diff_ci_high",
+        "p_value",
+        "p_holm",
+        "resolution",
+        "seeds_needed_low",
+        "seeds_needed_high",
+        "note",
+    ]
     for column in rows[0]:
         assert column in report.__doc__
 
@@ -162,8 +221,9 @@ def test_seeds_needed_range_from_chi_square_bound_on_the_sd(built):
     d = np.array(LOSSES["differential"]) - np.array(LOSSES["standard"])
     s = d.std(ddof=1)
     ends = [s * math.sqrt(2 / sps.chi2.ppf(0.975, 2)), s * math.sqrt(2 / sps.chi2.ppf(0.025, 2))]
-    expected = [next(n for n in range(2, 10**6) if sps.t.ppf(0.975, n - 1) * sd / math.sqrt(n) <= 0.01)
-                for sd in ends]
+    expected = [
+        next(n for n in range(2, 10**6) if sps.t.ppf(0.975, n - 1) * sd / math.sqrt(n) <= 0.01) for sd in ends
+    ]
     row = _row(rows, "attention=differential", "final_val_loss")
     assert [int(row["seeds_needed_low"]), int(row["seeds_needed_high"])] == expected
 
@@ -172,7 +232,9 @@ def test_holm_column_equals_statsmodels_within_the_comparison(built):
     from statsmodels.stats.multitest import multipletests
 
     _, rows, md, rep = built
-    mine = [r for r in rows if r["cell"] == "attention=differential" and r["kind"] == "metric" and r["p_value"]]
+    mine = [
+        r for r in rows if r["cell"] == "attention=differential" and r["kind"] == "metric" and r["p_value"]
+    ]
     raw = [float(r["p_value"]) for r in mine]
     # Reference: statsmodels.stats.multitest.multipletests(method="holm") (Holm, 1979).
     expected = multipletests(raw, method="holm")[1]
@@ -187,7 +249,9 @@ def test_metadata_is_context_not_tested(built):
     metrics = {r.metric for r in rep.rows}
     assert not {"copy/copy_level", "copy/n_items", "probe_seconds/copy"} & metrics
     kinds = {r["metric"]: r["kind"] for r in rows}
-    assert kinds["copy/copy_level"] == kinds["probe_seconds/copy"] == "context" and kinds["copy/acc"] == "metric"
+    assert (
+        kinds["copy/copy_level"] == kinds["probe_seconds/copy"] == "context" and kinds["copy/acc"] == "metric"
+    )
     level = next(c for c in rep.context if c.key == "copy/copy_level" and c.cell == "attention=differential")
     assert level.values == [0.25, 0.25, 0.25]
 
@@ -197,8 +261,12 @@ def test_verdict_on_primary_metric_from_grid_record(built):
     (v,) = rep.verdicts
     d = np.array(LOSSES["differential"]) - np.array(LOSSES["standard"])
     low, high = sps.t.interval(0.95, 2, loc=d.mean(), scale=sps.sem(d))  # reference: scipy
-    assert (v.metric, v.cell, v.reference, v.n_paired) == ("final_val_loss", "attention=differential",
-                                                           "attention=standard", 3)
+    assert (v.metric, v.cell, v.reference, v.n_paired) == (
+        "final_val_loss",
+        "attention=differential",
+        "attention=standard",
+        3,
+    )
     assert (v.low, v.high) == (pytest.approx(low, rel=1e-12), pytest.approx(high, rel=1e-12))
     assert v.status == ("excludes zero" if high < 0 or low > 0 else "undecided")
     # Render check: the report opens with the verdict sentence, then the paired-difference chart.
@@ -264,8 +332,10 @@ def test_console_opens_with_the_verdict_then_the_table(grid, capsys):
 def test_several_grids_open_with_one_verdict_line_each(grid, tmp_path, capsys):
     for attention, loss in [("standard", [3.0, 3.1, 3.2]), ("differential", [3.0, 3.1, 3.2])]:
         for seed in SEEDS:
-            _write_run(tmp_path / f"attention={attention},seed={seed}",
-                       _summary(attention, seed, final_val_loss=loss[seed] + 0.01 * (attention == "standard")))
+            _write_run(
+                tmp_path / f"attention={attention},seed={seed}",
+                _summary(attention, seed, final_val_loss=loss[seed] + 0.01 * (attention == "standard")),
+            )
     _grid_json(tmp_path)
     assert report.main([str(grid), str(tmp_path)]) == 0
     out = capsys.readouterr().out.splitlines()
@@ -292,9 +362,14 @@ def test_no_grid_json_needs_baseline(tmp_path, capsys):
 def test_fewer_than_three_pairs_give_no_seeds_number(tmp_path):
     for attention in ("standard", "differential"):
         for seed in (0, 1):
-            _write_run(tmp_path / f"attention={attention},seed={seed}",
-                       _summary(attention, seed, final_val_loss=3.0 + 0.1 * seed + 0.01 * (seed + 1) *
-                                (attention == "differential")))
+            _write_run(
+                tmp_path / f"attention={attention},seed={seed}",
+                _summary(
+                    attention,
+                    seed,
+                    final_val_loss=3.0 + 0.1 * seed + 0.01 * (seed + 1) * (attention == "differential"),
+                ),
+            )
     _grid_json(tmp_path)
     row = _obj(table.build(load.load_grid(tmp_path)), "attention=differential", "final_val_loss")
     assert row.seeds_needed is None and row.seeds_note == "needs >= 3 paired seeds to estimate"
@@ -304,12 +379,18 @@ def test_drill_tokens_to_not_reached_is_censored(tmp_path):
     for attention in ("standard", "differential"):
         for seed in SEEDS:
             reached = not (attention == "differential" and seed == 2)
-            probes = {"drill/auc": 0.5 + 0.01 * seed, "drill/acc": 0.9, "drill/copy_level": 0.125,
-                      "drill/half_reached": float(reached)}
+            probes = {
+                "drill/auc": 0.5 + 0.01 * seed,
+                "drill/acc": 0.9,
+                "drill/copy_level": 0.125,
+                "drill/half_reached": float(reached),
+            }
             if reached:
                 probes["drill/tokens_to_half"] = 1000.0 * (seed + 1)
-            _write_run(tmp_path / f"attention={attention},seed={seed}",
-                       _summary(attention, seed, final_val_loss=2.0, probes=probes))
+            _write_run(
+                tmp_path / f"attention={attention},seed={seed}",
+                _summary(attention, seed, final_val_loss=2.0, probes=probes),
+            )
     _grid_json(tmp_path, primary_metric="drill/auc", resolution=0.02)
     rep = table.build(load.load_grid(tmp_path))
     assert rep.metric == "drill/auc" and rep.verdicts[0].metric == "drill/auc"
@@ -338,8 +419,13 @@ def test_unknown_baseline_in_grid_json_is_a_one_line_error(tmp_path, capsys):
 @pytest.mark.parametrize("make", ["empty", "missing"])
 def test_exit_code_2_without_runs(tmp_path, make):
     target = tmp_path / "grid" if make == "missing" else tmp_path
-    result = subprocess.run([sys.executable, "-m", "ablate.report", str(target)], cwd=ROOT,
-                            capture_output=True, text=True, timeout=60)
+    result = subprocess.run(
+        [sys.executable, "-m", "ablate.report", str(target)],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert result.returncode == 2
     assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.stderr
     assert ("no summary.json" if make == "empty" else "not found") in result.stderr
@@ -357,11 +443,23 @@ def sweep_grid(tmp_path_factory):
         for model, size in SIZES.items():
             for seed in range(5):
                 loss = 2.0 + amplitude * size**-0.35 + rng.normal(0, 0.004)
-                _write_run(root / f"attention={attention},model={model},seed={seed}",
-                           _summary(attention, seed, cell=f"attention={attention},model={model}",
-                                    non_embedding_params=int(size), final_val_loss=float(loss), probes={}))
-    _grid_json(root, baseline="attention=standard,model=m1", unequal_axes=["model"],
-               sweep={"axis": "params", "key": "model"})
+                _write_run(
+                    root / f"attention={attention},model={model},seed={seed}",
+                    _summary(
+                        attention,
+                        seed,
+                        cell=f"attention={attention},model={model}",
+                        non_embedding_params=int(size),
+                        final_val_loss=float(loss),
+                        probes={},
+                    ),
+                )
+    _grid_json(
+        root,
+        baseline="attention=standard,model=m1",
+        unequal_axes=["model"],
+        sweep={"axis": "params", "key": "model"},
+    )
     assert report.main([str(root), "--resamples", "200"]) == 0
     return root
 
@@ -382,15 +480,23 @@ def test_sweep_report_states_a_determined_ratio(sweep_grid):
 def test_sweep_cells_compare_at_the_same_sweep_point(sweep_grid):
     with (sweep_grid / "summary.csv").open() as handle:
         rows = list(csv.DictReader(handle))
-    assert _row(rows, "attention=differential,model=m3", "final_val_loss")["reference"] == "attention=standard,model=m3"
+    assert (
+        _row(rows, "attention=differential,model=m3", "final_val_loss")["reference"]
+        == "attention=standard,model=m3"
+    )
 
 
 def test_retrieval_grid_averages_over_other_axes_and_seeds():
     from ablate.report import plots
 
-    grid_table = {"c": {"retrieval/acc_len64_depth0.5_dist2": {0: 0.2, 1: 0.4},
-                        "retrieval/acc_len64_depth0.5_dist4": {0: 0.6, 1: 0.8},
-                        "retrieval/acc/len128_depth0.5": {0: 1.0}, "copy/acc": {0: 0.9}}}
+    grid_table = {
+        "c": {
+            "retrieval/acc_len64_depth0.5_dist2": {0: 0.2, 1: 0.4},
+            "retrieval/acc_len64_depth0.5_dist4": {0: 0.6, 1: 0.8},
+            "retrieval/acc/len128_depth0.5": {0: 1.0},
+            "copy/acc": {0: 0.9},
+        }
+    }
     lengths, depths, acc = plots.retrieval_grid(grid_table)["c"]
     assert lengths == [64, 128] and depths == [0.5]
     assert acc.tolist() == [[pytest.approx(0.5), pytest.approx(1.0)]]
@@ -398,8 +504,10 @@ def test_retrieval_grid_averages_over_other_axes_and_seeds():
 
 def test_stopped_and_unfinished_runs_are_listed(tmp_path):
     _write_run(tmp_path / "attention=standard,seed=0", _summary("standard", 0, final_val_loss=3.0, probes={}))
-    _write_run(tmp_path / "attention=standard,seed=1", {"status": "stopped", "attention": "standard", "seed": 1,
-                                                         "cell": "attention=standard", "step": 40})
+    _write_run(
+        tmp_path / "attention=standard,seed=1",
+        {"status": "stopped", "attention": "standard", "seed": 1, "cell": "attention=standard", "step": 40},
+    )
     unfinished = tmp_path / "attention=standard,seed=2"
     unfinished.mkdir()
     (unfinished / "config.yaml").write_text("seed: 2\n")

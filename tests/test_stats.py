@@ -162,5 +162,7 @@ def test_seeds_needed_range_brackets_the_point_estimate():
     # Ends by hand: smallest n with t(0.975, n-1) * sd / sqrt(n) <= 0.01 for the chi-square SD bounds
     # (scipy.stats.chi2 / scipy.stats.t).
     ends = [0.02 * math.sqrt(3 / sps.chi2.ppf(q, 3)) for q in (0.975, 0.025)]
-    hand = [next(n for n in range(2, 10**6) if sps.t.ppf(0.975, n - 1) * sd / math.sqrt(n) <= 0.01) for sd in ends]
+    hand = [
+        next(n for n in range(2, 10**6) if sps.t.ppf(0.975, n - 1) * sd / math.sqrt(n) <= 0.01) for sd in ends
+    ]
     assert [low, high] == hand and low <= seeds_needed(0.02, 0.01)[1] <= high

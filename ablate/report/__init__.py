@@ -58,8 +58,13 @@ def write_plots(report: table.Report, plot_dir: Path) -> list[tuple[str, str]]:
         plots.plot_retrieval(grids, plot_dir / OWN_PLOTS[3], labels)
         written.append(("retrieval accuracy over length and depth", OWN_PLOTS[3]))
     if report.efficiency:
-        plots.plot_sweep(plot_dir / OWN_PLOTS[4], report.sweep["axis"], report.sweep_designs, report.fits,
-                         report.efficiency)
+        plots.plot_sweep(
+            plot_dir / OWN_PLOTS[4],
+            report.sweep["axis"],
+            report.sweep_designs,
+            report.fits,
+            report.efficiency,
+        )
         written.append(("efficiency across the sweep", OWN_PLOTS[4]))
     return written
 
@@ -75,12 +80,20 @@ def write_report(report: table.Report) -> None:
 
 
 def parse(argv):
-    parser = argparse.ArgumentParser(prog="h2h-report", description="Compare the cells of grid folders over seeds.")
-    parser.add_argument("grids", type=Path, nargs="+", help="grid folders holding run folders with summary.json")
+    parser = argparse.ArgumentParser(
+        prog="h2h-report", description="Compare the cells of grid folders over seeds."
+    )
+    parser.add_argument(
+        "grids", type=Path, nargs="+", help="grid folders holding run folders with summary.json"
+    )
     parser.add_argument("--baseline", default=None, help="baseline cell (required without grid.json)")
-    parser.add_argument("--metric", default=None, help="primary metric (default: grid.json, else final_val_loss)")
+    parser.add_argument(
+        "--metric", default=None, help="primary metric (default: grid.json, else final_val_loss)"
+    )
     parser.add_argument("--resolution", type=float, default=None, help="resolution of the primary metric")
-    parser.add_argument("--resamples", type=int, default=1000, help="bootstrap draws for the efficiency ratio")
+    parser.add_argument(
+        "--resamples", type=int, default=1000, help="bootstrap draws for the efficiency ratio"
+    )
     parser.add_argument("--bootstrap-seed", type=int, default=0, help="seed of the bootstrap resampling")
     args = parser.parse_args(argv)
     if args.resamples < 1:
@@ -93,8 +106,12 @@ def parse(argv):
 def main(argv: list[str] | None = None) -> int:
     try:
         args = parse(argv)
-        reports = [table.build(load_grid(g, args.baseline, args.metric), args.resolution, args.resamples,
-                               args.bootstrap_seed) for g in args.grids]
+        reports = [
+            table.build(
+                load_grid(g, args.baseline, args.metric), args.resolution, args.resamples, args.bootstrap_seed
+            )
+            for g in args.grids
+        ]
         for report in reports:
             write_report(report)
     except ReportError as exc:

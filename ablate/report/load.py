@@ -93,8 +93,10 @@ def read_scalars(folder: Path) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         for tag in acc.Tags().get("scalars", []):
             for event in acc.Scalars(tag):
                 merged[tag][int(event.step)] = float(event.value)
-    return {tag: (np.array(sorted(points)), np.array([points[s] for s in sorted(points)]))
-            for tag, points in merged.items()}
+    return {
+        tag: (np.array(sorted(points)), np.array([points[s] for s in sorted(points)]))
+        for tag, points in merged.items()
+    }
 
 
 def read_record(grid: Path) -> records.GridRecord | None:

@@ -16,7 +16,9 @@ from ablate import efficiency
 from .table import Report, design_label
 
 LAMBDA_TAG = re.compile(r"^lambda/layer_(\d+)$")
-RETRIEVAL_KEY = re.compile(r"^retrieval/acc[/_]len(?P<length>\d+)[/_]depth(?P<depth>\d+(?:\.\d+)?)(?P<rest>.*)$")
+RETRIEVAL_KEY = re.compile(
+    r"^retrieval/acc[/_]len(?P<length>\d+)[/_]depth(?P<depth>\d+(?:\.\d+)?)(?P<rest>.*)$"
+)
 
 
 def pyplot():
@@ -73,8 +75,13 @@ def plot_val_loss(runs: list, path: Path, labels: dict[str, str]) -> list[str]:
         if steps.size == 0:
             continue
         n = len(by_cell[cell])
-        line, = ax.plot(steps, stacked.mean(axis=0), marker="o" if steps.size <= 20 else None, markersize=3,
-                        label=f"{labels[cell]} ({n} seed{'s' if n != 1 else ''})")
+        (line,) = ax.plot(
+            steps,
+            stacked.mean(axis=0),
+            marker="o" if steps.size <= 20 else None,
+            markersize=3,
+            label=f"{labels[cell]} ({n} seed{'s' if n != 1 else ''})",
+        )
         ax.fill_between(steps, stacked.min(axis=0), stacked.max(axis=0), color=line.get_color(), alpha=0.2)
     ax.set_xlabel("tokens seen")
     ax.set_ylabel("validation loss (nats)")
@@ -105,7 +112,9 @@ def plot_lambda(runs: list, path: Path, labels: dict[str, str]) -> bool:
         cmap = plt.get_cmap("viridis")
         for i, layer in enumerate(layers):
             steps, stacked = _aligned(by_cell[cell][layer])
-            ax.plot(steps, stacked.mean(axis=0), color=cmap(i / max(1, len(layers) - 1)), label=f"layer {layer}")
+            ax.plot(
+                steps, stacked.mean(axis=0), color=cmap(i / max(1, len(layers) - 1)), label=f"layer {layer}"
+            )
         ax.set_title(f"lambda per layer: {labels[cell]}", fontsize=9)
         ax.set_xlabel("tokens seen")
         ax.set_ylabel("lambda (mean over seeds)")
@@ -146,8 +155,9 @@ def retrieval_grid(table) -> dict[str, tuple[list[int], list[float], np.ndarray]
 def plot_retrieval(grids, path: Path, labels: dict[str, str]) -> None:
     plt = pyplot()
     cells = sorted(grids)
-    fig, axes = plt.subplots(1, len(cells), figsize=(4.5 * len(cells) + 1, 3.8), squeeze=False,
-                             layout="constrained")
+    fig, axes = plt.subplots(
+        1, len(cells), figsize=(4.5 * len(cells) + 1, 3.8), squeeze=False, layout="constrained"
+    )
     image = None
     for ax, cell in zip(axes[0], cells):
         lengths, depths, acc = grids[cell]
@@ -159,8 +169,15 @@ def plot_retrieval(grids, path: Path, labels: dict[str, str]) -> None:
         ax.set_title(labels[cell], fontsize=9)
         for (i, j), value in np.ndenumerate(acc):
             if math.isfinite(value):
-                ax.text(j, i, f"{value:.2f}", ha="center", va="center", fontsize=7,
-                        color="black" if value > 0.6 else "white")
+                ax.text(
+                    j,
+                    i,
+                    f"{value:.2f}",
+                    ha="center",
+                    va="center",
+                    fontsize=7,
+                    color="black" if value > 0.6 else "white",
+                )
     fig.colorbar(image, ax=axes[0].tolist(), label="retrieval accuracy")
     fig.savefig(path, dpi=110)
     plt.close(fig)
@@ -200,10 +217,17 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
     left.legend(fontsize=8)
     for comp in [c for c in comparisons if c.determined]:
         color = colors.get(comp.candidate, "black")
-        right.plot(comp.grid_x, 100 * comp.grid_ratio, color=color, label=f"{comp.candidate} vs {comp.baseline}")
+        right.plot(
+            comp.grid_x, 100 * comp.grid_ratio, color=color, label=f"{comp.candidate} vs {comp.baseline}"
+        )
         right.fill_between(comp.grid_x, 100 * comp.grid_low, 100 * comp.grid_high, color=color, alpha=0.2)
-        right.errorbar([comp.x_mid], [100 * comp.ratio], color=color, fmt="o",
-                       yerr=[[100 * (comp.ratio - comp.ci_low)], [100 * (comp.ci_high - comp.ratio)]])
+        right.errorbar(
+            [comp.x_mid],
+            [100 * comp.ratio],
+            color=color,
+            fmt="o",
+            yerr=[[100 * (comp.ratio - comp.ci_low)], [100 * (comp.ci_high - comp.ratio)]],
+        )
     right.axhline(100, color="grey", lw=0.8, ls="--")
     right.set_xscale("log")
     right.set_xlabel(label)

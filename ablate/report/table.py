@@ -24,8 +24,9 @@ from .load import LoadedGrid, ReportError, Run, folder_cell, is_number
 
 LOSS = "final_val_loss"
 # Numbers that describe a probe set or a run rather than measure a design: shown, never tested.
-CONTEXT_PATTERNS = [re.compile(p) for p in (r"(^|/)n_[^/]*$", r"^probe_seconds(/|$)", r"/copy_level$",
-                                            r"_reached$")]
+CONTEXT_PATTERNS = [
+    re.compile(p) for p in (r"(^|/)n_[^/]*$", r"^probe_seconds(/|$)", r"/copy_level$", r"_reached$")
+]
 TOKENS_TO = re.compile(r"^(?P<family>.+)/tokens_to_(?P<level>[^/]+)$")
 CELL_PART = re.compile(r"([^\s,=]+)=([^\s,]+)")
 LOSS_RESOLUTION, SHARE_RESOLUTION = 0.01, 0.02
@@ -75,10 +76,10 @@ class MetricRow:
     p_holm: float = math.nan
     diff_std: float = math.nan
     no_spread: bool = False
-    censored: str = ""          # "not reached in k of n seeds": no interval, no imputation
-    reduced: str = ""           # "paired on 3 of 4 launched seeds"
+    censored: str = ""  # "not reached in k of n seeds": no interval, no imputation
+    reduced: str = ""  # "paired on 3 of 4 launched seeds"
     resolution: float | None = None
-    seeds_needed: tuple | None = None   # (low, high) from the chi-square interval of the SD
+    seeds_needed: tuple | None = None  # (low, high) from the chi-square interval of the SD
     seeds_note: str = ""
 
     @property
@@ -96,7 +97,7 @@ class Verdict:
     low: float
     high: float
     resolution: float | None
-    status: str   # "excludes zero" | "undecided" | "no spread" | "one pair" | "censored" | "missing"
+    status: str  # "excludes zero" | "undecided" | "no spread" | "one pair" | "censored" | "missing"
     reduced: str = ""
     censored: str = ""
 
@@ -204,7 +205,9 @@ def values_by_cell(runs: list[Run]) -> dict[str, dict[str, dict]]:
             continue
         key = (run.cell, run.summary.seed)
         if key in owner:
-            raise ReportError(f"cell {run.cell!r} has seed {run.summary.seed} twice: {owner[key]} and {run.name}")
+            raise ReportError(
+                f"cell {run.cell!r} has seed {run.summary.seed} twice: {owner[key]} and {run.name}"
+            )
         owner[key] = run.name
         for name, value in run_numbers(run).items():
             table[run.cell][name][run.summary.seed] = value
@@ -218,9 +221,16 @@ def cells_of(loaded: LoadedGrid) -> list[Cell]:
     unfinished = defaultdict(int)
     for folder in loaded.unfinished:
         unfinished[folder_cell(folder)] += 1
-    return [Cell(name, len(rs) + unfinished.get(name, 0), sum(r.usable for r in rs),
-                 sum(r.summary.status == "diverged" for r in rs),
-                 sorted(r.summary.seed for r in rs if r.usable)) for name, rs in sorted(by_cell.items())]
+    return [
+        Cell(
+            name,
+            len(rs) + unfinished.get(name, 0),
+            sum(r.usable for r in rs),
+            sum(r.summary.status == "diverged" for r in rs),
+            sorted(r.summary.seed for r in rs if r.usable),
+        )
+        for name, rs in sorted(by_cell.items())
+    ]
 
 
 def censoring(table, cell: str, metric: str) -> str:
@@ -262,8 +272,9 @@ def fill_seeds_needed(row: MetricRow) -> None:
 def metric_row(table, cell: str, metric: str, ref: str, primary: tuple[str, float]) -> MetricRow:
     seeds = table.get(cell, {}).get(metric, {})
     row = MetricRow(cell, metric, ref, n=len(seeds))
-    row.censored = censoring(table, cell, metric) or (censoring(table, ref, metric) and "reference " +
-                                                      censoring(table, ref, metric))
+    row.censored = censoring(table, cell, metric) or (
+        censoring(table, ref, metric) and "reference " + censoring(table, ref, metric)
+    )
     if seeds and not row.censored:
         row.mean, row.ci_low, row.ci_high = mean_ci(list(seeds.values()))
         fill_difference(row, seeds, table.get(ref, {}).get(metric, {}))
@@ -281,7 +292,9 @@ def natural(text: str) -> tuple:
 def metric_rows(table, refs: dict[str, str], primary: tuple[str, float]) -> list[MetricRow]:
     keys = {m for per in table.values() for m in per if not is_context(m)}
     metrics = sorted(keys, key=lambda m: (m != primary[0], m != LOSS, natural(m)))
-    return [metric_row(table, cell, metric, refs[cell], primary) for metric in metrics for cell in sorted(refs)]
+    return [
+        metric_row(table, cell, metric, refs[cell], primary) for metric in metrics for cell in sorted(refs)
+    ]
 
 
 def adjust_and_count(rows: list[MetricRow]) -> list[TestCount]:
@@ -296,8 +309,15 @@ def adjust_and_count(rows: list[MetricRow]) -> list[TestCount]:
         for row, p in zip(members, adjusted):
             row.p_holm = float(p)
         tested = [r for r in members if math.isfinite(r.p_value)]
-        counts.append(TestCount(cell, ref, len(tested), sum(r.p_value < 0.05 for r in tested),
-                                sum(r.p_holm < 0.05 for r in tested)))
+        counts.append(
+            TestCount(
+                cell,
+                ref,
+                len(tested),
+                sum(r.p_value < 0.05 for r in tested),
+                sum(r.p_holm < 0.05 for r in tested),
+            )
+        )
     return counts
 
 
@@ -321,8 +341,19 @@ def verdict_of(row: MetricRow) -> Verdict:
         status = "one pair"
     else:
         status = "excludes zero" if (row.diff_low > 0 or row.diff_high < 0) else "undecided"
-    return Verdict(row.cell, row.reference, row.metric, row.n_paired, row.diff, row.diff_low, row.diff_high,
-                   row.resolution, status, row.reduced, row.censored)
+    return Verdict(
+        row.cell,
+        row.reference,
+        row.metric,
+        row.n_paired,
+        row.diff,
+        row.diff_low,
+        row.diff_high,
+        row.resolution,
+        status,
+        row.reduced,
+        row.censored,
+    )
 
 
 def context_values(table) -> list[Context]:
@@ -331,7 +362,9 @@ def context_values(table) -> list[Context]:
     for cell in sorted(table):
         for key in sorted(table[cell], key=natural):
             if is_context(key):
-                out.append(Context(cell, key, [table[cell][key][s] for s in sorted(table[cell][key], key=str)]))
+                out.append(
+                    Context(cell, key, [table[cell][key][s] for s in sorted(table[cell][key], key=str)])
+                )
     return out
 
 
@@ -345,8 +378,10 @@ def fairness_rows(runs: list[Run], refs: dict[str, str], tolerance: float) -> li
     values, match = {}, {}
     for cell, cell_runs in by_cell.items():
         source = [r for r in cell_runs if r.usable] or cell_runs
-        numbers = {k: [float(getattr(r.summary, k)) for r in source if is_number(getattr(r.summary, k))]
-                   for k in FAIRNESS_KEYS}
+        numbers = {
+            k: [float(getattr(r.summary, k)) for r in source if is_number(getattr(r.summary, k))]
+            for k in FAIRNESS_KEYS
+        }
         values[cell] = {k: float(np.mean(v)) if v else math.nan for k, v in numbers.items()}
         match[cell] = next((r.summary.budget_match for r in source if r.summary.budget_match), None)
     rows = []
@@ -356,8 +391,10 @@ def fairness_rows(runs: list[Run], refs: dict[str, str], tolerance: float) -> li
         row = FairnessRow(cell, refs[cell], values[cell], ratios, match[cell])
         flops = ratios["flops_per_token"]
         if match[cell] == "tokens" and math.isfinite(flops) and abs(flops - 1.0) > tolerance:
-            row.flag = (f"FLOPs/token {flops:.3f}x the reference at matched tokens "
-                        f"(beyond the {tolerance:g} tolerance)")
+            row.flag = (
+                f"FLOPs/token {flops:.3f}x the reference at matched tokens "
+                f"(beyond the {tolerance:g} tolerance)"
+            )
         rows.append(row)
     return rows
 
@@ -368,9 +405,15 @@ def left_out(loaded: LoadedGrid) -> list[LeftOut]:
         if not run.usable:
             rows.append(left_out_row(run))
     for folder in loaded.unfinished:
-        rows.append(LeftOut(str(folder.relative_to(loaded.folder)), "no summary", last_logged(folder),
-                            "unfinished or interrupted (no summary.json)"))
-    for cell in (loaded.record.running_elsewhere if loaded.record else []):
+        rows.append(
+            LeftOut(
+                str(folder.relative_to(loaded.folder)),
+                "no summary",
+                last_logged(folder),
+                "unfinished or interrupted (no summary.json)",
+            )
+        )
+    for cell in loaded.record.running_elsewhere if loaded.record else []:
         rows.append(LeftOut(str(cell), "running elsewhere", "-", "another process held this cell"))
     return rows
 
@@ -387,13 +430,18 @@ def left_out_row(run: Run) -> LeftOut:
     s = run.summary
     where = last_logged(run.folder, run.scalars)
     if s.status == "diverged":
-        where = f"diverged at {s.diverged_at_tokens:,} tokens" if is_number(s.diverged_at_tokens) else "diverged"
+        where = (
+            f"diverged at {s.diverged_at_tokens:,} tokens" if is_number(s.diverged_at_tokens) else "diverged"
+        )
         detail = f"last finite loss {s.last_finite_loss}"
     elif s.status == "failed":
         error = str(s.error or "").strip()
         detail = error.splitlines()[0][:200] if error else "no error message"
     elif s.status == "stopped":
-        where, detail = f"stopped at step {s.step}", "stopped early on request; rerun the same command to finish"
+        where, detail = (
+            f"stopped at step {s.step}",
+            "stopped early on request; rerun the same command to finish",
+        )
     elif s.status == "completed":
         detail = "completed but final_val_loss missing or not finite"
     else:
@@ -415,17 +463,25 @@ def sweep_cells(runs: list[Run], sweep_key: str, field_name: str) -> dict[str, d
 def efficiency_results(runs, sweep: dict, baseline: str, resamples: int, seed: int):
     """(comparisons, fits, cells by design, notes) for a sweep grid."""
     if not isinstance(sweep, dict) or sweep.get("axis") not in efficiency.AXIS_NOUNS:
-        raise ReportError(f"grid.json 'sweep' must be {{'axis': 'params' | 'tokens', 'key': ...}}, got {sweep!r}")
+        raise ReportError(
+            f"grid.json 'sweep' must be {{'axis': 'params' | 'tokens', 'key': ...}}, got {sweep!r}"
+        )
     key = sweep.get("key")
     designs = sweep_cells(runs, key, "non_embedding_params" if sweep["axis"] == "params" else "tokens")
     base = ",".join(f"{k}={v}" for k, v in cell_parts(baseline).items() if k != key) or baseline
     comparisons, fits, notes = [], {}, []
     if base not in designs:
-        return comparisons, fits, designs, [f"No completed runs of the baseline design {base}; no efficiency estimate."]
+        return (
+            comparisons,
+            fits,
+            designs,
+            [f"No completed runs of the baseline design {base}; no efficiency estimate."],
+        )
     for design in sorted(d for d in designs if d != base):
         try:
-            result, fits[base], fits[design] = efficiency.compare(base, designs[base], design, designs[design],
-                                                                  sweep["axis"], resamples=resamples, seed=seed)
+            result, fits[base], fits[design] = efficiency.compare(
+                base, designs[base], design, designs[design], sweep["axis"], resamples=resamples, seed=seed
+            )
         except efficiency.EfficiencyError as exc:
             notes.append(f"{design} vs {base}: not determined by this sweep ({exc}).")
             continue
@@ -433,7 +489,9 @@ def efficiency_results(runs, sweep: dict, baseline: str, resamples: int, seed: i
     return comparisons, fits, designs, notes
 
 
-def build(loaded: LoadedGrid, resolution: float | None = None, resamples: int = 1000, seed: int = 0) -> Report:
+def build(
+    loaded: LoadedGrid, resolution: float | None = None, resamples: int = 1000, seed: int = 0
+) -> Report:
     record = loaded.record
     resolution = resolution or (record.resolution if record else None)
     resolution = resolution or resolution_for(loaded.metric, "", 0.0, []) or LOSS_RESOLUTION
@@ -448,13 +506,27 @@ def build(loaded: LoadedGrid, resolution: float | None = None, resamples: int = 
     tests = adjust_and_count(rows)
     verdicts = [verdict_of(r) for r in rows if r.metric == loaded.metric and not r.is_reference]
     report = Report(
-        name=record.name if record else loaded.folder.name, folder=str(loaded.folder),
-        recipe=record.recipe if record else None, baseline=loaded.baseline, metric=loaded.metric,
-        resolution=resolution, refs=refs, cells=cells, rows=rows, verdicts=verdicts, tests=tests,
-        context=context_values(table), fairness=fairness_rows(loaded.runs, refs, record.tolerance if record else 0.02),
-        left_out=left_out(loaded), rounds=record.rounds if record else 1,
-        seeds=sorted({s for c in cells for s in c.seeds}), sweep=sweep, runs=loaded.runs)
+        name=record.name if record else loaded.folder.name,
+        folder=str(loaded.folder),
+        recipe=record.recipe if record else None,
+        baseline=loaded.baseline,
+        metric=loaded.metric,
+        resolution=resolution,
+        refs=refs,
+        cells=cells,
+        rows=rows,
+        verdicts=verdicts,
+        tests=tests,
+        context=context_values(table),
+        fairness=fairness_rows(loaded.runs, refs, record.tolerance if record else 0.02),
+        left_out=left_out(loaded),
+        rounds=record.rounds if record else 1,
+        seeds=sorted({s for c in cells for s in c.seeds}),
+        sweep=sweep,
+        runs=loaded.runs,
+    )
     if sweep:
         report.efficiency, report.fits, report.sweep_designs, report.efficiency_notes = efficiency_results(
-            loaded.runs, sweep, loaded.baseline, resamples, seed)
+            loaded.runs, sweep, loaded.baseline, resamples, seed
+        )
     return report

@@ -143,7 +143,7 @@ class Report:
     recipe: str | None
     baseline: str
     metric: str
-    resolution: float
+    resolution: float | None
     refs: dict
     cells: list
     rows: list
@@ -494,7 +494,7 @@ def build(
 ) -> Report:
     record = loaded.record
     resolution = resolution or (record.resolution if record else None)
-    resolution = resolution or resolution_for(loaded.metric, "", 0.0, []) or LOSS_RESOLUTION
+    resolution = resolution or resolution_for(loaded.metric, "", None, [])
     table = values_by_cell(loaded.runs)
     if not any(loaded.metric in per for per in table.values()):
         raise ReportError(f"primary metric {loaded.metric!r}: no completed run has it")

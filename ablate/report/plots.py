@@ -35,7 +35,7 @@ def paired_difference_chart(report: Report, path: Path) -> bool:
     if not shown:
         return False
     plt = pyplot()
-    fig, ax = plt.subplots(figsize=(max(4.5, 1.4 * len(shown) + 2), 3.6))
+    fig, ax = plt.subplots(figsize=(max(5.5, 1.4 * len(shown) + 2), 3.6))
     x = np.arange(len(shown))
     lows = [v.diff - v.low if math.isfinite(v.low) else 0.0 for v in shown]
     highs = [v.high - v.diff if math.isfinite(v.high) else 0.0 for v in shown]
@@ -43,7 +43,7 @@ def paired_difference_chart(report: Report, path: Path) -> bool:
     ax.axhline(0.0, color="black", lw=0.8)
     ax.set_xticks(x, [f"{design_label(v.cell, v.reference)}\n(n={v.n_paired})" for v in shown], fontsize=8)
     ax.set_ylabel(f"paired difference in {report.metric}")
-    ax.set_title(f"{report.metric}: cell minus reference, whiskers = 95% t interval", fontsize=9)
+    ax.set_title(f"{report.metric}: cell minus reference\nwhiskers = 95% t interval", fontsize=9)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)

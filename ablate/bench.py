@@ -21,6 +21,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import platform
 import re
 import resource
@@ -191,6 +192,22 @@ def quartile_spread(times: list[float]) -> float:
     return (q[2] - q[0]) / statistics.median(times)
 
 
+def paired_ratio(times: list[float], base_times: list[float]) -> float:
+    """Median over rounds of the ratio within a round (both saw the same machine load)."""
+    return statistics.median(t / u for t, u in zip(times, base_times))
+
+
+def ratios_to(c: Contender, base: Contender) -> dict:
+    """Wall and CPU ratios of ``c`` over ``base``: of the medians, and paired round by round."""
+    return {
+        "baseline": base.name,
+        "step_ratio": statistics.median(c.times) / statistics.median(base.times),
+        "paired_step_ratio": paired_ratio(c.times, base.times),
+        "cpu_ratio": statistics.median(c.cpu_times) / statistics.median(base.cpu_times),
+        "paired_cpu_ratio": paired_ratio(c.cpu_times, base.cpu_times),
+    }
+
+
 def summarise(contenders: list[Contender], probes: list[MatmulProbe], args, tokens_per_step: int) -> dict:
     peak_by_shape = {"x".join(map(str, p.shape)): p.flops_per_second() for p in probes}
     peak = max(peak_by_shape.values())
@@ -218,12 +235,8 @@ def summarise(contenders: list[Contender], probes: list[MatmulProbe], args, toke
             "cpu_seconds": c.cpu_times,
         }
     for c in contenders:
-        base = next((b for b in contenders if b.attention == "standard" and b.compile_mode == c.compile_mode), contenders[0])
-        rows[c.name]["baseline"] = base.name
-        rows[c.name]["step_ratio"] = rows[c.name]["median_step_seconds"] / rows[base.name]["median_step_seconds"]
-        # Paired: the ratio within each round, where both saw the same machine load; then the median.
-        rows[c.name]["paired_step_ratio"] = statistics.median(t / u for t, u in zip(c.times, base.times))
-        rows[c.name]["cpu_ratio"] = rows[c.name]["median_cpu_seconds"] / rows[base.name]["median_cpu_seconds"]
+        base = next(b for b in contenders if b.attention == args.baseline and b.compile_mode == c.compile_mode)
+        rows[c.name].update(ratios_to(c, base))
     return {
         "settings": {
             "model": args.model,
@@ -238,6 +251,8 @@ def summarise(contenders: list[Contender], probes: list[MatmulProbe], args, toke
             "warmup": args.warmup,
             "threads": torch.get_num_threads(),
             "compile": list(args.compile),
+            "baseline": args.baseline,
+            "load_average": {"before": list(args.load_before), "after": list(os.getloadavg())},
             "torch": torch.__version__,
             "python": platform.python_version(),
         },
@@ -253,6 +268,9 @@ def format_table(result: dict) -> str:
         f"model {s['model']}: d_model {s['d_model']}, {s['n_layers']} layers, seq_len {s['seq_len']}, "
         f"batch {s['batch_size']}, vocab {s['vocab_size']}; torch {s['torch']}, {s['threads']} threads",
         f"timed steps {s['steps']} per design after {s['warmup']} warm-up, alternated round by round",
+        "load average (1, 5, 15 min) before {} after {}".format(
+            *(" ".join(f"{x:.2f}" for x in s["load_average"][k]) for k in ("before", "after"))
+        ),
         "float32 matmul peak {:.1f} GFLOP/s (best median of {})".format(
             result["matmul_peak"]["flops_per_second"] / 1e9,
             ", ".join(f"{k} {v / 1e9:.1f}" for k, v in result["matmul_peak"]["by_shape"].items()),
@@ -260,21 +278,21 @@ def format_table(result: dict) -> str:
         "",
     ]
     header = (
-        f"{'design':<30}{'step ms':>9}{'spread':>8}{'ratio':>7}{'paired':>8}{'cpu ms':>8}{'cpu ratio':>10}"
+        f"{'design':<30}{'step ms':>9}{'spread':>8}{'ratio':>7}{'paired':>8}{'cpu ms':>8}{'cpu ratio':>10}{'paired':>8}"
         f"{'tok/s':>8}{'GFLOP/s':>9}{'of peak':>9}{'peak MiB':>10}"
     )
     lines += [header, "-" * len(header)]
     for name, r in result["designs"].items():
         lines.append(
             f"{name:<30}{r['median_step_seconds'] * 1e3:>9.1f}{r['step_spread'] * 100:>7.0f}%{r['step_ratio']:>7.2f}"
-            f"{r['paired_step_ratio']:>8.2f}{r['median_cpu_seconds'] * 1e3:>8.0f}{r['cpu_ratio']:>10.2f}"
+            f"{r['paired_step_ratio']:>8.2f}{r['median_cpu_seconds'] * 1e3:>8.0f}{r['cpu_ratio']:>10.2f}{r['paired_cpu_ratio']:>8.2f}"
             f"{r['tokens_per_second']:>8.0f}{r['flops_per_second'] / 1e9:>9.1f}{r['share_of_peak'] * 100:>8.1f}%"
             f"{r['memory']['peak_rss_bytes'] / MIB:>10.0f}"
         )
     methods = {r["memory"]["method"] for r in result["designs"].values()}
     lines += [
         "",
-        "ratio: median step time over the same-compile 'standard' row; paired: median over rounds of the",
+        f"ratio: median step time over the same-compile '{s['baseline']}' row; paired: median over rounds of the",
         "ratio within a round; cpu: process CPU time per step (all threads); spread: interquartile range / median",
         "GFLOP/s and of peak: training FLOPs per token (ablate.compute.account) x tokens / median step time",
         f"peak MiB: whole-process peak RSS during one step ({'; '.join(sorted(methods))}); "
@@ -295,6 +313,7 @@ def parse_args(argv=None):
     parser.add_argument("--model", default="tiny", help="model config under conf/model (default: tiny)")
     parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE", help="extra Hydra override (repeatable)")
     parser.add_argument("--attention", default=None, help="comma-separated choices (default: every one under conf/attention)")
+    parser.add_argument("--baseline", default="standard", help="the choice every ratio is taken against (default: standard)")
     parser.add_argument("--steps", type=int, default=10, help="timed steps per design (default: 10)")
     parser.add_argument("--warmup", type=int, default=2, help="untimed steps per design first (default: 2)")
     parser.add_argument("--batch-size", type=int, default=16)
@@ -317,6 +336,10 @@ def parse_args(argv=None):
     for name in args.attention:
         if name not in known:
             parser.error(f"--attention={name!r} must be one of {', '.join(sorted(known))}")
+    if args.baseline not in known:
+        parser.error(f"--baseline={args.baseline!r} must be one of {', '.join(sorted(known))}")
+    if args.baseline not in args.attention:
+        args.attention = [args.baseline, *args.attention]
     for flag in ("steps", "batch_size", "vocab_size"):
         if getattr(args, flag) <= 0:
             parser.error(f"--{flag.replace('_', '-')}={getattr(args, flag)} must be positive")
@@ -327,7 +350,19 @@ def parse_args(argv=None):
     return args
 
 
+def time_rounds(contenders, probes, rounds: int) -> None:
+    """Each round: one timed step of every contender, then one run of every matmul probe."""
+    for _ in range(rounds):
+        for c in contenders:
+            wall, cpu = c.step()
+            c.times.append(wall)
+            c.cpu_times.append(cpu)
+        for probe in probes:
+            probe.run()
+
+
 def run(args) -> dict:
+    args.load_before = os.getloadavg()
     if args.threads is not None:
         torch.set_num_threads(args.threads)
     contenders = [build_contender(args, a, mode) for mode in args.compile for a in args.attention]
@@ -344,13 +379,7 @@ def run(args) -> dict:
         print("h2h-bench: /proc/self/clear_refs is not available; memory is the process-wide getrusage max RSS", file=sys.stderr)
     for c in contenders:
         c.memory = measure_memory(c, can_reset)
-    for _ in range(args.steps):
-        for c in contenders:
-            wall, cpu = c.step()
-            c.times.append(wall)
-            c.cpu_times.append(cpu)
-        for probe in probes:
-            probe.run()
+    time_rounds(contenders, probes, args.steps)
     for c in contenders:
         if not all(math.isfinite(x) for x in c.losses):
             raise SystemExit(f"h2h-bench: {c.name} produced a non-finite loss; its timings are not meaningful")

@@ -81,12 +81,7 @@ def measure_flops_per_token(model: nn.Module, seq_len: int | None = None, batch:
     return counter.get_total_flops() / (batch * seq_len)
 
 
-def kaplan_non_embedding_params(n_layers: int, d_model: int) -> int:
-    """N = 12 L d^2 (Kaplan et al. 2020, Eq. 2.1 with d_attn = d_model, d_ff = 4 d_model)."""
-    return 12 * n_layers * d_model**2
-
-
-def compare(candidate: Accounting, baseline: Accounting) -> dict:
+def ratios(candidate: Accounting, baseline: Accounting) -> dict:
     """Ratios candidate / baseline used by the fairness check of a grid."""
     return {
         "params_ratio": candidate.params / baseline.params,

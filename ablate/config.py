@@ -42,6 +42,20 @@ def compose(overrides: list[str] | None = None, config_name: str = "config", ret
         return hydra_compose(config_name=config_name, overrides=list(overrides or []), return_hydra_config=return_hydra_config)
 
 
+def compose_isolated(overrides: list[str]):
+    """:func:`compose`, callable inside a running Hydra job: Hydra's global state (the job's own
+    config search path and HydraConfig) is saved before and put back after."""
+    from hydra.core.singleton import Singleton
+
+    saved = Singleton.get_state()
+    try:
+        cfg = compose(overrides)
+        OmegaConf.resolve(cfg)
+        return cfg
+    finally:
+        Singleton.set_state(saved)
+
+
 def build_attention_factory(cfg):
     """``layer_index -> block`` built with ``hydra.utils.instantiate(cfg.attention, ...)``."""
     from hydra.utils import instantiate
@@ -67,4 +81,5 @@ def build_model(cfg, vocab_size: int):
         ffn_hidden=m.ffn_hidden,
         tie_embeddings=m.tie_embeddings,
         init_std=m.init_std,
+        init_seed=int(cfg.seed) if cfg.model.get("keyed_init", True) else None,
     )

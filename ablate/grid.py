@@ -1,11 +1,12 @@
-"""Before a grid trains: expand its jobs, validate each config, and check fairness.
+"""Before a grid trains: expand its jobs, check each config, and check fairness.
 
-Uses Hydra's own override parser and basic sweeper to expand the sweep exactly as ``-m`` will,
-then composes each job's config with the compose API.
+Uses Hydra's own override parser to expand the sweep as ``-m`` will, then composes each job's
+config with the compose API.
 """
 
 from __future__ import annotations
 
+import itertools
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -13,8 +14,8 @@ from pathlib import Path
 import torch
 from omegaconf import OmegaConf
 
-from .compute import account, compare
-from .schema import ConfigError, validate
+from .compute import account, ratios
+from .schema import ConfigError, check_ranges
 
 NOT_DESIGN = ("seed", "recipe", "run_root")
 
@@ -28,21 +29,37 @@ class Cell:
 
 
 def cell_name(overrides: list[str]) -> str:
-    """The design choices of a job: its overrides without seed, recipe and runtime/hydra keys."""
+    """The design choices of a job: its overrides without seed, recipe and runtime/hydra/grid keys."""
     keep = []
     for o in overrides:
         key = o.split("=", 1)[0].lstrip("+~")
-        if key in NOT_DESIGN or key.startswith(("hydra.", "runtime.")):
+        if key in NOT_DESIGN or key.startswith(("hydra.", "runtime.", "grid.")):
             continue
         keep.append(o)
     return ",".join(sorted(keep)) or "default"
+
+
+def sweep_jobs(parsed: list) -> list[list[str]]:
+    """Every combination of the parsed overrides' values, in Hydra's basic-sweeper order: the cross
+    product over keys in first-seen order, a later override of a key replacing an earlier one.
+    Hydra has no public function for this expansion, so it is written here from the public
+    ``Override`` API (``sweep_string_iterator``, ``get_value_element_as_str``)."""
+    axes: dict[str, list[str]] = {}
+    for o in parsed:
+        key = o.get_key_element()
+        if o.is_sweep_override():
+            if not o.is_discrete_sweep():
+                raise ConfigError(f"{key}: only lists of values can be swept (a,b,c or choice(...)), not ranges")
+            axes[key] = [f"{key}={v}" for v in o.sweep_string_iterator()]
+        else:
+            axes[key] = [f"{key}={o.get_value_element_as_str()}"]
+    return [list(job) for job in itertools.product(*axes.values())]
 
 
 def expand_jobs(overrides: list[str], hydra_overrides: list[str] = ()) -> tuple[list[list[str]], object]:
     """Every job's override list for ``h2h-train -m <overrides>``, recipe sweeps included;
     ``hydra_overrides`` (the command line's ``hydra.*`` ones, e.g. ``hydra.sweeper.params.seed=0``)
     take part in the compose as they do in Hydra's, but are not job overrides."""
-    from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
     from hydra.core.override_parser.overrides_parser import OverridesParser
 
     from .config import compose
@@ -52,7 +69,7 @@ def expand_jobs(overrides: list[str], hydra_overrides: list[str] = ()) -> tuple[
         parsed = parser.parse_overrides(overrides)
     except Exception as exc:
         raise ConfigError(one_line(exc)) from None
-    first = [o.get_key_element() + "=" + (str(list(o.sweep_iterator())[0]) if o.is_sweep_override() else o.get_value_element_as_str()) if not o.is_delete() else o.input_line for o in parsed]
+    first = [_first_value(o) for o in parsed]
     try:
         base = compose(first + list(hydra_overrides), return_hydra_config=True)
     except Exception as exc:
@@ -60,8 +77,7 @@ def expand_jobs(overrides: list[str], hydra_overrides: list[str] = ()) -> tuple[
     params = dict(base.hydra.sweeper.params or {})
     cli_keys = {o.get_key_element() for o in parsed}
     merged = list(overrides) + [f"{k}={v}" for k, v in params.items() if k not in cli_keys]
-    jobs = BasicSweeper.split_arguments(parser.parse_overrides(merged), None)[0]
-    return jobs, base
+    return sweep_jobs(parser.parse_overrides(merged)), base
 
 
 def output_folder(overrides: list[str], multirun: bool) -> Path:
@@ -91,20 +107,61 @@ def output_folder(overrides: list[str], multirun: bool) -> Path:
     return Path(os.path.abspath(str(folder)))
 
 
-def check_cells(jobs: list[list[str]], vocab_size: int = 1024) -> tuple[list[Cell], object]:
-    """Compose and validate every job; group jobs into cells; account each cell on the meta
-    device (no memory, no time)."""
-    from .config import build_model, compose
+def _first_value(o) -> str:
+    if o.is_delete():
+        return o.input_line
+    value = str(next(iter(o.sweep_iterator()))) if o.is_sweep_override() else o.get_value_element_as_str()
+    return f"{o.get_key_element()}={value}"
 
+
+def data_shape(cfg) -> tuple[int, int]:
+    """(vocabulary size, tokens per training sequence) of the config's data, without building it."""
+    data = OmegaConf.to_container(cfg.data, resolve=True)
+    if data.get("kind", "logbook") == "logbook":
+        return int(data["vocab_size"]), int(cfg.model.seq_len)
+    from toy_corpus.drills import Drill
+
+    drill = Drill.from_dict({**data, "seed": int(cfg.seed)})
+    return int(drill.vocab_size), int(drill.length - 1)
+
+
+def accounting_of(cfg):
+    """Parameters and FLOPs per token of a config's model, on the meta device (no memory, no time)."""
+    from .config import build_model
+
+    vocab_size, seq_len = data_shape(cfg)
+    with torch.device("meta"):
+        return account(build_model(cfg, vocab_size), seq_len)
+
+
+def check_cells(jobs: list[list[str]]) -> list[Cell]:
+    """Compose and check every job; group jobs into cells; account each cell."""
     cells: dict[str, Cell] = {}
     for job in jobs:
         cfg = compose_checked(job)
         name = cell_name(job)
         if name not in cells:
-            with torch.device("meta"):
-                acc = account(build_model(cfg, vocab_size))
-            cells[name] = Cell(name, job, cfg, acc)
-    return list(cells.values()), cfg
+            cells[name] = Cell(name, job, cfg, accounting_of(cfg))
+    return list(cells.values())
+
+
+def baseline_overrides(run_overrides: list[str], baseline: str) -> list[str]:
+    """A run's overrides with the baseline cell's ``key=value`` pairs in place of the same keys."""
+    base = override_dict(baseline.split(","))
+    return [o for o in run_overrides if o.split("=", 1)[0] not in base] + [f"{k}={v}" for k, v in base.items()]
+
+
+def baseline_flops_per_token(resolved: dict, run_overrides: list[str]) -> float:
+    """Training FLOPs per token of the grid's declared baseline at this run's other settings: what
+    ``budget.tokens`` buys when the budget is matched in FLOPs and no FLOPs figure is given."""
+    from .config import compose_isolated
+
+    baseline = (resolved.get("grid") or {}).get("baseline")
+    if not baseline:
+        raise ConfigError("budget.match=flops with budget.flops=null prices budget.tokens at the baseline's FLOPs "
+                          "per token, but grid.baseline is not set; set budget.flops or grid.baseline")
+    cfg = compose_isolated(baseline_overrides(run_overrides, baseline))
+    return accounting_of(cfg).flops_per_token
 
 
 def compose_checked(overrides: list[str]):
@@ -117,15 +174,15 @@ def compose_checked(overrides: list[str]):
         raise
     except Exception as exc:
         raise ConfigError(one_line(exc)) from None
-    validate_all(cfg)
+    check_all(cfg)
     return cfg
 
 
-def validate_all(cfg) -> None:
+def check_all(cfg) -> None:
     """Schema ranges, the data group's own checks, and building one attention block."""
     from hydra.utils import instantiate
 
-    validate(cfg)
+    check_ranges(cfg)
     try:
         import toy_corpus
 
@@ -133,15 +190,17 @@ def validate_all(cfg) -> None:
     except ValueError as exc:
         raise ConfigError(f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)) from None
     if cfg.get("probes") is not None:
-        from .probes import resolve_config
+        from .probes import check_config
 
         try:
-            resolve_config(OmegaConf.to_container(cfg.probes, resolve=True))
+            check_config(OmegaConf.to_container(cfg.probes, resolve=True))
         except ValueError as exc:
             raise ConfigError(one_line(exc)) from None
+    from .attention import check_block
+
     try:
         with torch.device("meta"):
-            instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
+            block = instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
     except Exception as exc:
         cause = exc.__cause__ or exc.__context__
         if isinstance(exc, ValueError) or isinstance(cause, ValueError):
@@ -150,6 +209,10 @@ def validate_all(cfg) -> None:
                 message += f" (model.d_model={cfg.model.d_model}, attention.head_dim={cfg.attention.get('head_dim')})"
             raise ConfigError(f"attention: {message}") from None
         raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {one_line(exc)}") from None
+    try:
+        check_block(block)
+    except TypeError as exc:
+        raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: {exc}") from None
 
 
 def one_line(exc: BaseException) -> str:
@@ -177,8 +240,11 @@ def one_line(exc: BaseException) -> str:
 def find_baseline(cells: list[Cell], baseline: str | None) -> Cell:
     """The cell whose overrides include every ``key=value`` of ``baseline`` (the recipe names
     it without the overrides that all cells share, such as ``budget=smoke``)."""
-    if baseline is None:
-        return next((c for c in cells if "attention=standard" in c.name.split(",")), cells[0])
+    if not baseline:
+        raise ConfigError(
+            "grid.baseline: not set; a grid needs the cell every comparison is made against, e.g. "
+            f"grid.baseline='attention=standard' (quoted); cells: {'; '.join(c.name for c in cells)}"
+        )
     wanted = set(baseline.split(","))
     matches = [c for c in cells if wanted <= set(c.name.split(","))]
     if len(matches) != 1:
@@ -193,8 +259,8 @@ def fairness_table(cells: list[Cell], baseline: str) -> list[dict]:
     base = next(c for c in cells if c.name == baseline)
     rows = []
     for c in cells:
-        ratios = compare(c.accounting, base.accounting)
-        rows.append({"cell": c.name, **c.accounting.as_dict(), **ratios})
+        row_ratios = ratios(c.accounting, base.accounting)
+        rows.append({"cell": c.name, **c.accounting.as_dict(), **row_ratios})
     return rows
 
 

@@ -7,17 +7,25 @@
 
 Initialisation: every linear map and the embedding ~ N(0, 0.02^2); the two maps that write into
 the residual stream (attention ``out_proj`` and SwiGLU ``down``) use 0.02 / sqrt(2 L) so the
-residual variance does not grow with depth (common practice, no source). Other parameters keep
-the block's own initialisation. The model knows nothing of configs: it takes an attention factory.
+residual variance does not grow with depth (common practice, no source). Norm gains start at 1;
+a block's other parameters are initialised by its optional ``init_parameter`` (else they keep the
+block's own initialisation). With ``init_seed`` every tensor is drawn from its own generator keyed by
+(seed, parameter name): two designs built with one seed start with identical tensors wherever
+name and shape agree (common random numbers, a variance-reduction technique of simulation
+practice; Law, "Simulation Modeling and Analysis"), so their paired difference is not blurred by
+unrelated starting weights. The model knows nothing of configs: it takes an attention factory.
 """
 
 from __future__ import annotations
 
+import hashlib
 import math
 from typing import Callable
 
 import torch
 from torch import nn
+
+from .checks import positive_int
 
 AttentionFactory = Callable[[int], nn.Module]
 
@@ -26,6 +34,12 @@ def swiglu_hidden(d_model: int, multiple_of: int = 8) -> int:
     """About 8/3 d_model, rounded up to a multiple of ``multiple_of``."""
     hidden = int(math.ceil(8 * d_model / 3))
     return multiple_of * int(math.ceil(hidden / multiple_of))
+
+
+def keyed_generator(seed: int, name: str) -> torch.Generator:
+    """A CPU generator seeded from SHA-256 of ``"<seed>/<name>"``: one independent stream per tensor."""
+    digest = hashlib.sha256(f"{seed}/{name}".encode()).digest()
+    return torch.Generator().manual_seed(int.from_bytes(digest[:8], "little") & (2**63 - 1))
 
 
 class SwiGLU(nn.Module):
@@ -64,6 +78,8 @@ class Decoder(nn.Module):
         ffn_hidden: SwiGLU hidden size; default about 8/3 d_model.
         tie_embeddings: share the output head with the token embedding.
         init_std: standard deviation of the normal initialisation.
+        init_seed: key every parameter's generator by (init_seed, name); None draws from torch's
+            global generator in construction order.
 
     Shapes: ``ids [batch, time]`` (int64) -> ``logits [batch, time, vocab_size]``.
     """
@@ -78,11 +94,11 @@ class Decoder(nn.Module):
         ffn_hidden: int | None = None,
         tie_embeddings: bool = True,
         init_std: float = 0.02,
+        init_seed: int | None = None,
     ):
         super().__init__()
         for name, value in (("vocab_size", vocab_size), ("d_model", d_model), ("n_layers", n_layers), ("seq_len", seq_len)):
-            if not isinstance(value, int) or isinstance(value, bool) or value <= 0:
-                raise ValueError(f"{name}={value!r} must be a positive integer")
+            positive_int(name, value)
         self.vocab_size, self.d_model, self.n_layers, self.seq_len = vocab_size, d_model, n_layers, seq_len
         self.ffn_hidden = ffn_hidden or swiglu_hidden(d_model)
         self.tie_embeddings = tie_embeddings
@@ -92,20 +108,24 @@ class Decoder(nn.Module):
         )
         self.final_norm = nn.RMSNorm(d_model, eps=1e-5)
         self.head = nn.Linear(d_model, vocab_size, bias=False)
-        self._init_weights(init_std)
         if tie_embeddings:
             self.head.weight = self.embed.weight
+        self._init_weights(init_std, init_seed)
 
-    def _init_weights(self, std: float) -> None:
+    def _init_weights(self, std: float, seed: int | None) -> None:
         residual_std = std / math.sqrt(2 * self.n_layers)
-        for block in self.blocks:
-            for module in block.modules():
-                if isinstance(module, nn.Linear):
-                    nn.init.normal_(module.weight, 0.0, std)
-            nn.init.normal_(block.attention.out_proj.weight, 0.0, residual_std)
-            nn.init.normal_(block.ffn.down.weight, 0.0, residual_std)
-        nn.init.normal_(self.embed.weight, 0.0, std)
-        nn.init.normal_(self.head.weight, 0.0, std)
+        residual = {id(b.attention.out_proj.weight) for b in self.blocks} | {id(b.ffn.down.weight) for b in self.blocks}
+        linear = {id(m.weight) for m in self.modules() if isinstance(m, nn.Linear)} | {id(self.embed.weight)}
+        owners = {id(p): (block.attention, local) for block in self.blocks
+                  for local, p in block.attention.named_parameters(recurse=False)}
+        for name, p in self.named_parameters():  # tied weights appear once, under the embedding's name
+            if p.is_meta:
+                continue
+            generator = keyed_generator(seed, name) if seed is not None else None
+            if id(p) in linear:
+                nn.init.normal_(p, 0.0, residual_std if id(p) in residual else std, generator=generator)
+            elif id(p) in owners and hasattr(owners[id(p)][0], "init_parameter") and generator is not None:
+                owners[id(p)][0].init_parameter(owners[id(p)][1], p, generator)
 
     def forward(self, ids: torch.Tensor) -> torch.Tensor:
         h = self.embed(ids)

@@ -33,14 +33,21 @@ def lr_at(step: int, total_steps: int, lr: float, warmup_steps: int, min_lr_rati
     return floor + (lr - floor) * 0.5 * (1.0 + math.cos(math.pi * progress))
 
 
-def training_step(model: nn.Module, optimizer, batch: torch.Tensor, lr: float, grad_clip: float) -> tuple[torch.Tensor, torch.Tensor]:
-    """One optimizer step on ``batch`` (``[B, T+1]`` token ids). Returns (loss, grad_norm) as
-    tensors, so callers decide when to synchronise; non-finite values are left for them to check."""
+def training_step(
+    model: nn.Module, optimizer, batch: torch.Tensor, lr: float, grad_clip: float, mask: torch.Tensor | None = None
+) -> tuple[torch.Tensor, torch.Tensor]:
+    """One optimizer step on ``batch`` (``[B, T+1]`` token ids). The loss is the mean cross-entropy
+    over the targets ``batch[:, 1:]``, or over those where ``mask`` (bool ``[B, T]``) is true.
+    Returns (loss, grad_norm) as tensors, so callers decide when to synchronise; non-finite values
+    are left for them to check."""
     for group in optimizer.param_groups:
         group["lr"] = lr
     inputs, targets = batch[:, :-1], batch[:, 1:]
     logits = model(inputs)
-    loss = nn.functional.cross_entropy(logits.reshape(-1, logits.shape[-1]), targets.reshape(-1))
+    if mask is None:
+        loss = nn.functional.cross_entropy(logits.reshape(-1, logits.shape[-1]), targets.reshape(-1))
+    else:
+        loss = nn.functional.cross_entropy(logits[mask], targets[mask])
     optimizer.zero_grad(set_to_none=True)
     loss.backward()
     grad_norm = torch.nn.utils.clip_grad_norm_(model.parameters(), grad_clip if grad_clip > 0 else float("inf"))

@@ -1,16 +1,20 @@
-"""One training run: corpus -> model -> loop -> TensorBoard, checkpoints, summary.json.
+"""One training run as named stages around one :class:`RunState`.
 
-Hydra-free: takes the resolved config as a plain dict plus the run folder and a few names the
-entry point read from Hydra (the config-group choices and the grid cell).
+    prepare  -> config, data source, model, budget, optimizer, checkpoint read (refused if damaged)
+    resume   -> weights, optimizer and curves from the checkpoint, when there is one
+    one_step -> one optimizer step on the step's batch
+    periodic -> what happens every so many steps: logs, evaluation, probes, checkpoint, signals
+    finish   -> final probes, summary.json
+
+Hydra-free: takes the resolved config plus the run folder and a few names the entry point read
+from Hydra (the config-group choices and the grid cell).
 """
 
 from __future__ import annotations
 
-import contextlib
 import math
-import signal
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -18,8 +22,10 @@ import torch
 from omegaconf import OmegaConf
 
 from . import records
+from .checks import one_line
 from .compute import account, steps_from_budget
 from .optim import build_optimizer, lr_at, training_step
+from .signals import StopSignals
 
 
 class Interrupted(Exception):
@@ -32,6 +38,63 @@ class RunInfo:
     choices: dict  # config-group choices, e.g. {"attention": "differential", "model": "tiny"}
     cell: str      # grid cell name (the run's overrides without the seed)
     overrides: list
+
+
+@dataclass
+class Schedule:
+    """Every how many steps each periodic hook runs (``probe_every`` None: only at the end)."""
+
+    log_every: int
+    eval_every: int
+    ckpt_every: int
+    probe_every: int | None
+    stop_after: int | None
+
+    @classmethod
+    def of(cls, resolved: dict, tokens_per_step: int) -> "Schedule":
+        budget, probes = resolved["budget"], resolved.get("probes") or {}
+        probe_tokens = probes.get("every_tokens") if probes.get("enabled") else None
+        return cls(
+            log_every=budget["log_every_steps"],
+            eval_every=max(1, round(budget["eval_every_tokens"] / tokens_per_step)),
+            ckpt_every=max(1, round(budget["checkpoint_every_tokens"] / tokens_per_step)),
+            probe_every=max(1, round(probe_tokens / tokens_per_step)) if probe_tokens else None,
+            stop_after=resolved["runtime"]["stop_after_steps"],
+        )
+
+
+@dataclass
+class RunState:
+    """Everything one run carries from stage to stage."""
+
+    cfg: object
+    resolved: dict
+    info: RunInfo
+    device: torch.device
+    source: object
+    model: torch.nn.Module
+    train_model: torch.nn.Module
+    optimizer: torch.optim.Optimizer
+    total_steps: int
+    tokens_per_step: int
+    warmup: int
+    flops_per_token: float
+    schedule: Schedule
+    summary: records.RunSummary
+    started: float
+    step: int = 0
+    last_val: float | None = None
+    last_finite: float | None = None
+    history: dict = field(default_factory=dict)  # metric -> [(tokens, value)], kept across resumes
+    writer: object = None
+
+    @property
+    def run_dir(self) -> Path:
+        return self.info.run_dir
+
+    @property
+    def tokens(self) -> int:
+        return self.step * self.tokens_per_step
 
 
 def set_threads(runtime: dict, parallel_jobs: int | None) -> None:
@@ -52,41 +115,6 @@ def resolve_device(name: str) -> torch.device:
     return torch.device(name)
 
 
-def reference_flops_per_token(cfg, vocab_size: int) -> float:
-    """FLOPs per token of standard attention at this model size: what budget.tokens buys when
-    the budget is matched in FLOPs and no FLOPs figure is given."""
-    from .config import build_model
-
-    ref = cfg.copy()
-    ref.attention = OmegaConf.create({"_target_": "ablate.attention.StandardAttention", "head_dim": cfg.model.head_dim})
-    with torch.device("meta"):
-        return account(build_model(ref, vocab_size)).flops_per_token
-
-
-def evaluate(model, windows: torch.Tensor, batch_size: int) -> float:
-    model.eval()
-    total, count = 0.0, 0
-    with torch.no_grad():
-        for i in range(0, len(windows), batch_size):
-            batch = windows[i : i + batch_size]
-            logits = model(batch[:, :-1])
-            loss = torch.nn.functional.cross_entropy(
-                logits.reshape(-1, logits.shape[-1]).float(), batch[:, 1:].reshape(-1), reduction="sum"
-            )
-            total += loss.item()
-            count += batch[:, 1:].numel()
-    model.train()
-    return total / count
-
-
-def lambda_values(model) -> dict[str, float]:
-    out = {}
-    for i, block in enumerate(model.attention_blocks()):
-        if hasattr(block, "lambda_value"):
-            out[f"lambda/layer_{i}"] = float(block.lambda_value().detach())
-    return out
-
-
 def hparams_of(choices: dict, resolved: dict) -> dict:
     """Design values for TensorBoard's hparams table: group choices plus scalar options."""
     values = {f"choice/{k}": str(v) for k, v in sorted(choices.items()) if v is not None}
@@ -100,78 +128,14 @@ def hparams_of(choices: dict, resolved: dict) -> dict:
     return values
 
 
-class StopSignals:
-    """SIGINT (Ctrl-C) and SIGTERM handling for one run.
-
-    Outside the training loop either signal raises KeyboardInterrupt. Inside it
-    (``with stops.deferred():``) a signal is only noted: the loop finishes the step it is in,
-    writes a checkpoint and stops, so a checkpoint never holds a half-applied optimizer step
-    and a second signal during that save changes nothing.
-    """
-
-    SIGNALS = ("SIGINT", "SIGTERM")
-
-    def __init__(self):
-        self.received: str | None = None
-        self._deferring = False
-        self._previous = {}
-
-    def _handle(self, signum, frame):
-        if self._deferring:
-            self.received = self.received or signal.Signals(signum).name
-            return
-        raise KeyboardInterrupt
-
-    def __enter__(self):
-        for name in self.SIGNALS:
-            sig = getattr(signal, name)
-            if signal.getsignal(sig) == signal.SIG_IGN:
-                continue  # ignored by whoever started us (nohup, a background job): keep it so
-            try:
-                self._previous[sig] = signal.signal(sig, self._handle)
-            except ValueError:  # not the main thread (some launchers): signals stay as they were
-                self.__exit__()
-                break
-        return self
-
-    def __exit__(self, *exc):
-        for sig, previous in self._previous.items():
-            signal.signal(sig, previous)
-        self._previous.clear()
-        return False
-
-    @contextlib.contextmanager
-    def deferred(self):
-        self._deferring = True
-        try:
-            yield
-        finally:
-            self._deferring = False
-
-
-def data_windows(corpus, seq_len: int, batch_size: int, seed: int, eval_windows: int):
-    """Training batches and validation windows. What the corpus cannot serve (a window longer
-    than its documents allow, more validation windows than it has) is only known once the text
-    is tokenized; it is a ConfigError naming the key, raised before anything trains."""
-    import toy_corpus
-
-    split, key, value = "training", "model.seq_len", seq_len
-    try:
-        batches = toy_corpus.WindowBatches(corpus.train_ids, seq_len, batch_size, seed)
-        split = "validation"
-        val = toy_corpus.validation_windows(corpus.val_ids, seq_len, eval_windows)
-    except ValueError as exc:
-        from .schema import ConfigError
-
-        message = str(exc).splitlines()[0]
-        if message.startswith("ids:"):
-            raise ConfigError(f"{key}={value}: longer than the {split} text allows ({message.removeprefix('ids: ')}); "
-                              "allowed: a shorter model.seq_len, or more data (data.n_documents)") from None
-        if message.startswith("n_windows="):
-            raise ConfigError(f"budget.eval_windows={eval_windows}: {message.split(': ', 1)[1]}; "
-                              "allowed: fewer windows, or more data (data.n_documents)") from None
-        raise ConfigError(message) from None
-    return batches, val
+def block_scalars(model) -> dict[str, float]:
+    """What each attention block chooses to report (its optional ``log_scalars()``), per layer."""
+    out = {}
+    for i, block in enumerate(model.attention_blocks()):
+        report = getattr(block, "log_scalars", None)
+        for name, value in (report() if report else {}).items():
+            out[f"{name}/layer_{i}"] = float(value)
+    return out
 
 
 def check_fits(model, saved: dict, path: Path) -> None:
@@ -189,219 +153,278 @@ def check_fits(model, saved: dict, path: Path) -> None:
         )
 
 
-def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> dict:
+# --- prepare ---------------------------------------------------------------------------------
+
+
+def plan_steps(resolved: dict, info: RunInfo, flops_per_token: float, tokens_per_step: int) -> int:
+    """Steps the budget buys. With ``budget.match=flops`` and no FLOPs figure, ``budget.tokens`` is
+    priced at the FLOPs per token of the grid's declared baseline (``grid.baseline``)."""
+    budget = resolved["budget"]
+    flops = budget["flops"]
+    if budget["match"] == "flops" and flops is None:
+        from .grid import baseline_flops_per_token
+
+        flops = budget["tokens"] * baseline_flops_per_token(resolved, info.overrides)
+    return steps_from_budget(budget["match"], tokens_per_step, flops_per_token, budget["tokens"], flops)
+
+
+def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, dict | None]:
+    """Everything before the first step. Reads (and refuses) an existing checkpoint before anything
+    in the folder is rewritten; returns the state and the checkpoint to resume from, if any."""
+    from .config import build_model
+    from .data import open_source
+
+    resolved = OmegaConf.to_container(cfg, resolve=True)
+    device = resolve_device(resolved["runtime"]["device"])
+    info.run_dir.mkdir(parents=True, exist_ok=True)
+    fingerprint = records.config_fingerprint(resolved)
+    ckpt_path = info.run_dir / records.CHECKPOINT
+    records.remove_stale_temp_files(info.run_dir)
+    saved = records.load_checkpoint(ckpt_path, fingerprint) if ckpt_path.exists() else None
+
+    set_threads(resolved["runtime"], parallel_jobs)
+    batch_size = resolved["budget"]["batch_size"]
+    source = open_source(resolved, resolved["model"]["seq_len"], batch_size, resolved["seed"], device)
+    records.atomic_write_bytes(info.run_dir / records.CONFIG, OmegaConf.to_yaml(cfg, resolve=True).encode())
+    torch.manual_seed(resolved["seed"])  # anything not drawn from a keyed generator
+    model = build_model(cfg, source.vocab_size)
+    acc = account(model, source.seq_len)
+    tokens_per_step = batch_size * source.seq_len
+    total_steps = plan_steps(resolved, info, acc.flops_per_token, tokens_per_step)
+    model.to(device)
+    o = resolved["optim"]
+    optimizer = build_optimizer(model, o["lr"], o["betas"], o["weight_decay"], o["eps"])
+    compiled = bool(resolved["runtime"]["compile"])
+    summary = _first_summary(resolved, info, acc, total_steps, tokens_per_step, fingerprint, device, source)
+    summary.compiled = compiled
+    state = RunState(
+        cfg=cfg, resolved=resolved, info=info, device=device, source=source, model=model,
+        train_model=torch.compile(model) if compiled else model, optimizer=optimizer,
+        total_steps=total_steps, tokens_per_step=tokens_per_step, warmup=int(o["warmup_fraction"] * total_steps),
+        flops_per_token=acc.flops_per_token, schedule=Schedule.of(resolved, tokens_per_step), summary=summary,
+        started=time.time(),
+    )
+    return state, saved
+
+
+def _first_summary(resolved, info, acc, total_steps, tokens_per_step, fingerprint, device, source) -> records.RunSummary:
+    return records.RunSummary(
+        status="running", attention=info.choices.get("attention"), seed=resolved["seed"], cell=info.cell,
+        choices=info.choices, overrides=info.overrides, data_kind=source.kind, params=acc.params,
+        non_embedding_params=acc.non_embedding_params, flops_per_token=acc.flops_per_token,
+        budget_match=resolved["budget"]["match"], total_steps=total_steps, tokens_per_step=tokens_per_step,
+        fingerprint=fingerprint, environment=records.environment(str(device)),
+    )
+
+
+# --- resume ----------------------------------------------------------------------------------
+
+
+def resume(state: RunState, saved: dict) -> None:
+    """Weights, optimizer, step and curves from a checkpoint written by this config."""
+    path = state.run_dir / records.CHECKPOINT
+    check_fits(state.model, saved["model"], path)
+    try:
+        state.model.load_state_dict(saved["model"])
+        state.optimizer.load_state_dict(saved["optimizer"])
+    except (KeyError, ValueError, RuntimeError) as exc:
+        raise records.CheckpointError(
+            f"checkpoint {path} does not fit this model or optimizer ({type(exc).__name__}: "
+            f"{one_line(exc)}); delete it to start the run afresh"
+        ) from None
+    state.step, state.last_val, state.last_finite = int(saved["step"]), saved.get("last_val"), saved.get("last_train")
+    state.history = saved.get("history") or {}
+    print(f"resuming {state.run_dir.name} from step {state.step} ({state.tokens:,} tokens)", flush=True)
+
+
+def save(state: RunState) -> None:
+    """A checkpoint at the current step; the events it vouches for reach the disk first."""
+    state.writer.flush()
+    records.save_checkpoint(state.run_dir / records.CHECKPOINT, {
+        "fingerprint": state.summary.fingerprint, "step": state.step, "last_val": state.last_val,
+        "last_train": state.last_finite, "history": state.history,
+        "model": state.model.state_dict(), "optimizer": state.optimizer.state_dict(),
+    })
+
+
+# --- one step --------------------------------------------------------------------------------
+
+
+def one_step(state: RunState) -> tuple[float, float, float]:
+    """One optimizer step on the step's batch. Returns (loss, grad_norm, lr); advances the step."""
+    o = state.resolved["optim"]
+    tokens, mask = state.source.batch(state.step, state.device)
+    lr = lr_at(state.step, state.total_steps, o["lr"], state.warmup, o["min_lr_ratio"])
+    loss, grad_norm = training_step(state.train_model, state.optimizer, tokens, lr, o["grad_clip"], mask)
+    state.step += 1
+    return loss.item(), grad_norm.item(), lr
+
+
+def note_divergence(state: RunState, loss: float, grad: float) -> None:
+    """training_step skipped the optimizer step on a non-finite gradient; nothing of this step is
+    saved: the last checkpoint stays the last finite state."""
+    s = state.summary
+    s.diverged_at_step, s.diverged_at_tokens, s.last_finite_loss = state.step, state.tokens, state.last_finite
+    s.diverged_on = "loss" if not math.isfinite(loss) else "gradient"
+    s.diverged_loss = loss if math.isfinite(loss) else str(loss)
+    s.diverged_grad_norm = grad if math.isfinite(grad) else str(grad)
+    state.writer.add_scalar("loss/train", loss, state.tokens)
+    state.writer.add_scalar("optim/grad_norm", grad, state.tokens)
+
+
+# --- periodic hooks --------------------------------------------------------------------------
+
+
+def log_step(state: RunState, loss: float, grad: float, lr: float, speed: float) -> None:
+    w, t = state.writer, state.tokens
+    for tag, value in (("loss/train", loss), ("optim/lr", lr), ("optim/grad_norm", grad),
+                       ("speed/tokens_per_second", speed), ("compute/train_flops", t * state.flops_per_token)):
+        w.add_scalar(tag, value, t)
+    for tag, value in block_scalars(state.model).items():
+        w.add_scalar(tag, value, t)
+
+
+def evaluate(state: RunState) -> None:
+    numbers = state.source.evaluate(state.model)
+    state.last_val = numbers["loss/val"]
+    for tag, value in numbers.items():
+        state.writer.add_scalar(tag, value, state.tokens)
+        state.history.setdefault(tag, []).append((state.tokens, float(value)))
+
+
+def run_probes(state: RunState, probes_cfg: dict | None) -> dict:
+    if not probes_cfg or not probes_cfg.get("enabled"):
+        return {}
+    numbers, images = state.source.probe(state.model, probes_cfg, state.device)
+    for name, value in numbers.items():
+        state.writer.add_scalar(f"probe/{name}", value, state.tokens)
+    if images:
+        from PIL import Image
+
+        folder = state.run_dir / "probes"
+        folder.mkdir(exist_ok=True)
+        for name, image in images.items():
+            state.writer.add_image(f"probe/{name}", image, state.tokens, dataformats="HWC")
+            Image.fromarray(np.asarray(image)).save(folder / (name.replace("/", "_") + ".png"))
+    return {k: float(v) for k, v in numbers.items()}
+
+
+def periodic(state: RunState, stops: StopSignals) -> str | None:
+    """Evaluation, periodic probes, checkpoint and the stop requests after a step. Returns
+    ``"stopped"`` when the run stops early as asked; raises :class:`Interrupted` on a signal."""
+    sch, step, last = state.schedule, state.step, state.step == state.total_steps
+    if step % sch.eval_every == 0 or last:
+        evaluate(state)
+    if sch.probe_every and step % sch.probe_every == 0 and not last:
+        # numbers only during training; pictures are drawn once, at the end
+        run_probes(state, {**state.resolved["probes"], "images": False})
+    saved = step % sch.ckpt_every == 0 or last
+    if saved:
+        save(state)
+    if stops.received is not None:
+        if not saved:
+            save(state)
+        raise Interrupted(
+            f"stopped by {stops.received} at step {step} of {state.total_steps} ({state.tokens:,} tokens); "
+            f"checkpoint saved in {state.run_dir}. Run the same command again to resume."
+        )
+    if sch.stop_after is not None and step >= sch.stop_after and not last:
+        if not saved:
+            save(state)
+        return "stopped"
+    return None
+
+
+def train(state: RunState, stops: StopSignals, bar) -> str:
+    """Steps until the budget is spent, the loss diverges or a stop is asked for. Returns the status."""
+    window_start, window_tokens = time.perf_counter(), 0
+    with stops.deferred():
+        while state.step < state.total_steps:
+            loss, grad, lr = one_step(state)
+            if not (math.isfinite(loss) and math.isfinite(grad)):
+                note_divergence(state, loss, grad)
+                return "diverged"
+            state.last_finite = loss
+            window_tokens += state.tokens_per_step
+            bar.update(state.tokens_per_step)
+            if state.step % state.schedule.log_every == 0 or state.step == state.total_steps:
+                elapsed = time.perf_counter() - window_start
+                log_step(state, loss, grad, lr, window_tokens / elapsed if elapsed > 0 else float("nan"))
+                bar.set_postfix(loss=f"{loss:.3f}")
+                window_start, window_tokens = time.perf_counter(), 0
+            status = periodic(state, stops)
+            if status is not None:
+                return status
+    return "completed"
+
+
+# --- finish ----------------------------------------------------------------------------------
+
+
+def finish(state: RunState, status: str) -> records.RunSummary:
+    """Final probes and numbers into the summary; ``summary.json`` unless the run only paused."""
+    s = state.summary
+    s.status, s.step, s.tokens = status, state.step, state.tokens
+    s.train_flops = state.tokens * state.flops_per_token
+    s.final_train_loss, s.final_val_loss = state.last_finite, state.last_val
+    if status == "completed":
+        s.probes = run_probes(state, state.resolved.get("probes"))
+        for name, value in state.source.final_metrics(state.history, state.total_steps * state.tokens_per_step).items():
+            s.probes[name] = value
+            state.writer.add_scalar(f"final/{name}", value, state.tokens)
+        state.writer.add_scalar("final/val_loss", state.last_val, state.tokens)
+        state.writer.add_scalar("final/train_loss", state.last_finite, state.tokens)
+    state.writer.flush()
+    s.wall_seconds = time.time() - state.started
+    if status != "stopped":
+        records.write_summary(state.run_dir, s)
+    return s
+
+
+def open_writer(state: RunState):
+    """TensorBoard writer for the run folder. Everything up to a checkpoint's step was flushed
+    before the checkpoint was written, so on resume TensorBoard is told to drop only what an earlier
+    attempt logged after it (``purge_step``) and the curve has no duplicated steps."""
+    from torch.utils.tensorboard import SummaryWriter
+    from torch.utils.tensorboard.summary import hparams
+
+    writer = SummaryWriter(log_dir=str(state.run_dir), purge_step=state.tokens + 1 if state.step else None)
+    if state.step == 0:
+        exp, ssi, sei = hparams(hparams_of(state.info.choices, state.resolved),
+                                {"final/val_loss": 0.0, "final/train_loss": 0.0})
+        for s in (exp, ssi, sei):
+            writer.file_writer.add_summary(s)
+        writer.add_text("config", "```\n" + OmegaConf.to_yaml(state.cfg, resolve=True) + "\n```", 0)
+    return writer
+
+
+def progress_bar(state: RunState):
+    from tqdm import tqdm
+
+    return tqdm(
+        total=state.total_steps * state.tokens_per_step, initial=state.tokens, unit="tok", unit_scale=True,
+        desc=state.info.cell or state.run_dir.name, disable=not state.resolved["runtime"]["progress"],
+        dynamic_ncols=True, leave=False,
+    )
+
+
+def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> records.RunSummary:
     """Train one run to its budget (resuming if a checkpoint exists). Returns the summary.
 
     Raises :class:`Interrupted` after writing a checkpoint when SIGINT or SIGTERM arrives during
     training, and ``records.CheckpointError`` (before touching the run folder) when the folder's
-    checkpoint is damaged or belongs to another config.
+    checkpoint is damaged or belongs to another config. The TensorBoard writer is closed (flushed)
+    on every way out: the event files of a diverged, failed or interrupted run are kept whole.
     """
     with StopSignals() as stops:
-        return _run(cfg, info, parallel_jobs, stops)
-
-
-def _run(cfg, info: RunInfo, parallel_jobs: int | None, stops: StopSignals) -> dict:
-    import toy_corpus
-    from torch.utils.tensorboard import SummaryWriter
-    from torch.utils.tensorboard.summary import hparams
-
-    from .config import build_model
-
-    started = time.time()
-    resolved = OmegaConf.to_container(cfg, resolve=True)
-    device = resolve_device(resolved["runtime"]["device"])
-    run_dir = info.run_dir
-    run_dir.mkdir(parents=True, exist_ok=True)
-    fingerprint = records.config_fingerprint(resolved)
-    ckpt_path = run_dir / records.CHECKPOINT
-    records.remove_stale_temp_files(run_dir)
-    # Read (and refuse) an existing checkpoint before anything in the folder is rewritten.
-    state = records.load_checkpoint(ckpt_path, fingerprint) if ckpt_path.exists() else None
-
-    set_threads(resolved["runtime"], parallel_jobs)
-    seq_len, batch_size = cfg.model.seq_len, cfg.budget.batch_size
-
-    corpus = toy_corpus.get_corpus(resolved["data"], seq_len, resolved["runtime"]["cache_dir"])
-    batches, val_windows = data_windows(corpus, seq_len, batch_size, cfg.seed, cfg.budget.eval_windows)
-    records.atomic_write_bytes(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True).encode())
-    torch.manual_seed(cfg.seed)
-    model = build_model(cfg, corpus.vocab_size)
-    acc = account(model)
-    flops_budget = cfg.budget.flops
-    if cfg.budget.match == "flops" and flops_budget is None:
-        flops_budget = cfg.budget.tokens * reference_flops_per_token(cfg, corpus.vocab_size)
-    tokens_per_step = batch_size * seq_len
-    total_steps = steps_from_budget(cfg.budget.match, tokens_per_step, acc.flops_per_token, cfg.budget.tokens, flops_budget)
-    model.to(device)
-    optimizer = build_optimizer(model, cfg.optim.lr, cfg.optim.betas, cfg.optim.weight_decay, cfg.optim.eps)
-    warmup = int(cfg.optim.warmup_fraction * total_steps)
-
-    step = 0
-    last_val = None
-    last_finite = None
-    if state is not None:
-        check_fits(model, state["model"], ckpt_path)
-        try:
-            model.load_state_dict(state["model"])
-            optimizer.load_state_dict(state["optimizer"])
-        except (KeyError, ValueError, RuntimeError) as exc:
-            raise records.CheckpointError(
-                f"checkpoint {ckpt_path} does not fit this model or optimizer ({type(exc).__name__}: "
-                f"{str(exc).splitlines()[0][:160]}); delete it to start the run afresh"
-            ) from None
-        step, last_val, last_finite = int(state["step"]), state.get("last_val"), state.get("last_train")
-        print(f"resuming {run_dir.name} from step {step} ({step * tokens_per_step:,} tokens)", flush=True)
-        del state
-
-    train_model = torch.compile(model) if cfg.runtime.compile else model
-    val = torch.from_numpy(val_windows).to(device)
-    # Everything up to the checkpoint's step was flushed before the checkpoint was written, so
-    # on resume TensorBoard is told to drop only what an earlier attempt logged after it
-    # (purge_step: events at or after it are hidden), and the curve has no duplicated steps.
-    # The writer is closed (flushed) on every way out: the event files of a diverged, failed or
-    # interrupted run are kept whole.
-    with SummaryWriter(log_dir=str(run_dir), purge_step=step * tokens_per_step + 1 if step else None) as writer:
-        if step == 0:
-            exp, ssi, sei = hparams(hparams_of(info.choices, resolved), {"final/val_loss": 0.0, "final/train_loss": 0.0})
-            for s in (exp, ssi, sei):
-                writer.file_writer.add_summary(s)
-            writer.add_text("config", "```\n" + OmegaConf.to_yaml(cfg, resolve=True) + "\n```", 0)
-
-        eval_every = max(1, round(cfg.budget.eval_every_tokens / tokens_per_step))
-        ckpt_every = max(1, round(cfg.budget.checkpoint_every_tokens / tokens_per_step))
-        log_every = cfg.budget.log_every_steps
-        probes_cfg = resolved.get("probes") or {}
-        probe_every_tokens = probes_cfg.get("every_tokens") if probes_cfg.get("enabled") else None
-        probe_every = max(1, round(probe_every_tokens / tokens_per_step)) if probe_every_tokens else None
-        stop_after = cfg.runtime.stop_after_steps
-        summary = {
-            "status": "running",
-            "attention": info.choices.get("attention"),
-            "choices": info.choices,
-            "cell": info.cell,
-            "overrides": info.overrides,
-            "seed": cfg.seed,
-            "params": acc.params,
-            "non_embedding_params": acc.non_embedding_params,
-            "flops_per_token": acc.flops_per_token,
-            "budget_match": cfg.budget.match,
-            "total_steps": total_steps,
-            "tokens_per_step": tokens_per_step,
-            "fingerprint": fingerprint,
-            "environment": records.environment(str(device)),
-            "probes": {},
-        }
-
-        def save(at_step: int):
-            writer.flush()  # events up to at_step reach the disk before the checkpoint that vouches for them
-            records.save_checkpoint(ckpt_path, {
-                "fingerprint": fingerprint, "step": at_step, "last_val": last_val, "last_train": last_finite,
-                "model": model.state_dict(), "optimizer": optimizer.state_dict(),
-            })
-
-        from tqdm import tqdm
-
-        bar = tqdm(
-            total=total_steps * tokens_per_step, initial=step * tokens_per_step, unit="tok", unit_scale=True,
-            desc=info.cell or run_dir.name, disable=not cfg.runtime.progress, dynamic_ncols=True, leave=False,
-        )
-        t_window, tokens_window = time.perf_counter(), 0
-        status = "completed"
-        try:
-            with stops.deferred():
-                while step < total_steps:
-                    batch = torch.from_numpy(batches.get(step)).to(device)
-                    lr = lr_at(step, total_steps, cfg.optim.lr, warmup, cfg.optim.min_lr_ratio)
-                    loss, grad_norm = training_step(train_model, optimizer, batch, lr, cfg.optim.grad_clip)
-                    step += 1
-                    tokens = step * tokens_per_step
-                    loss_value, grad_value = loss.item(), grad_norm.item()
-                    if not (math.isfinite(loss_value) and math.isfinite(grad_value)):
-                        # training_step skipped the optimizer step on a non-finite gradient; nothing
-                        # of this step is saved: the last checkpoint stays the last finite state.
-                        status = "diverged"
-                        summary.update(
-                            diverged_at_step=step, diverged_at_tokens=tokens, last_finite_loss=last_finite,
-                            diverged_on="loss" if not math.isfinite(loss_value) else "gradient",
-                            diverged_loss=loss_value if math.isfinite(loss_value) else str(loss_value),
-                            diverged_grad_norm=grad_value if math.isfinite(grad_value) else str(grad_value),
-                        )
-                        writer.add_scalar("loss/train", loss_value, tokens)
-                        writer.add_scalar("optim/grad_norm", grad_value, tokens)
-                        break
-                    last_finite = loss_value
-                    tokens_window += tokens_per_step
-                    bar.update(tokens_per_step)
-                    if step % log_every == 0 or step == total_steps:
-                        elapsed = time.perf_counter() - t_window
-                        speed = tokens_window / elapsed if elapsed > 0 else float("nan")
-                        writer.add_scalar("loss/train", loss_value, tokens)
-                        writer.add_scalar("optim/lr", lr, tokens)
-                        writer.add_scalar("optim/grad_norm", grad_value, tokens)
-                        writer.add_scalar("speed/tokens_per_second", speed, tokens)
-                        writer.add_scalar("compute/train_flops", tokens * acc.flops_per_token, tokens)
-                        for tag, value in lambda_values(model).items():
-                            writer.add_scalar(tag, value, tokens)
-                        bar.set_postfix(loss=f"{loss_value:.3f}")
-                        t_window, tokens_window = time.perf_counter(), 0
-                    if step % eval_every == 0 or step == total_steps:
-                        last_val = evaluate(model, val, batch_size)
-                        writer.add_scalar("loss/val", last_val, tokens)
-                    if probe_every and step % probe_every == 0 and step < total_steps:
-                        # numbers only during training; pictures are drawn once, at the end
-                        run_probes(model, corpus, {**probes_cfg, "images": False}, device, writer, run_dir, tokens)
-                    saved = step % ckpt_every == 0 or step == total_steps
-                    if saved:
-                        save(step)
-                    if stops.received is not None:
-                        if not saved:
-                            save(step)
-                        raise Interrupted(
-                            f"stopped by {stops.received} at step {step} of {total_steps} ({step * tokens_per_step:,} tokens); "
-                            f"checkpoint saved in {run_dir}. Run the same command again to resume."
-                        )
-                    if stop_after is not None and step >= stop_after and step < total_steps:
-                        if not saved:
-                            save(step)
-                        status = "stopped"
-                        break
-        finally:
-            bar.close()
-
-        tokens = step * tokens_per_step
-        summary.update(
-            status=status,
-            step=step,
-            tokens=tokens,
-            train_flops=tokens * acc.flops_per_token,
-            final_train_loss=last_finite,
-            final_val_loss=last_val,
-        )
-        if status == "completed":
-            summary["probes"] = run_probes(model, corpus, resolved.get("probes"), device, writer, run_dir, tokens)
-            writer.add_scalar("final/val_loss", last_val, tokens)
-            writer.add_scalar("final/train_loss", last_finite, tokens)
-        writer.flush()
-        summary["wall_seconds"] = time.time() - started
-        if status != "stopped":
-            records.write_json(run_dir / records.SUMMARY, summary)
-        return summary
-
-
-def run_probes(model, corpus, probes_cfg, device, writer, run_dir: Path, tokens: int) -> dict:
-    if not probes_cfg or not probes_cfg.get("enabled"):
-        return {}
-    from .probes import run_probes as probe_all
-
-    numbers, images = probe_all(model, corpus, probes_cfg, device=str(device))
-    for name, value in numbers.items():
-        writer.add_scalar(f"probe/{name}", value, tokens)
-    if images:
-        from PIL import Image
-
-        folder = run_dir / "probes"
-        folder.mkdir(exist_ok=True)
-        for name, image in images.items():
-            writer.add_image(f"probe/{name}", image, tokens, dataformats="HWC")
-            Image.fromarray(np.asarray(image)).save(folder / (name.replace("/", "_") + ".png"))
-    return {k: float(v) for k, v in numbers.items()}
+        state, saved = prepare(cfg, info, parallel_jobs)
+        if saved is not None:
+            resume(state, saved)
+            del saved
+        with open_writer(state) as state.writer:
+            bar = progress_bar(state)
+            try:
+                status = train(state, stops, bar)
+            finally:
+                bar.close()
+            return finish(state, status)

@@ -1,7 +1,7 @@
 """Structured-config schemas (registered in Hydra's ConfigStore) and the range checks beside them.
 
 Hydra rejects wrong types and unknown keys against these dataclasses while composing; the
-checks in :func:`validate` cover what a type cannot say (ranges, divisibility, known names).
+checks in :func:`check_ranges` cover what a type cannot say (ranges, divisibility, known names).
 Every failure is a :class:`ConfigError` whose message is one line naming key, value and what is
 allowed.
 """
@@ -13,6 +13,10 @@ from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional
 
 from hydra.core.config_store import ConfigStore
+
+from toy_corpus.config import LogbookSchema
+
+from .checks import positive_int, positive_number
 
 
 class ConfigError(ValueError):
@@ -28,6 +32,7 @@ class ModelSchema:
     ffn_hidden: Optional[int] = None
     tie_embeddings: bool = True
     init_std: float = 0.02
+    keyed_init: bool = True
 
 
 @dataclass
@@ -70,8 +75,25 @@ class GridSchema:
     baseline: Optional[str] = None
     tolerance: float = 0.02
     unequal_axes: List[str] = field(default_factory=list)
-    target_halfwidth: float = 0.01
+    primary_metric: str = "final_val_loss"
+    resolution: float = 0.01
+    max_seeds: Optional[int] = None
     sweep: Optional[Dict[str, Any]] = None
+
+
+@dataclass
+class ProbesSchema:
+    """The probes group (ranges and probe names are checked by ``ablate.probes.check_config``)."""
+
+    enabled: List[str] = field(default_factory=list)
+    images: bool = True
+    n_images: int = 2
+    image_layers: int = 2
+    val_windows: int = 8
+    position_buckets: int = 8
+    max_items: Optional[int] = None
+    batch_tokens: int = 8192
+    every_tokens: Optional[float] = None
 
 
 @dataclass
@@ -90,15 +112,23 @@ class RunSchema:
 
 
 def register() -> None:
-    ConfigStore.instance().store(name="run_schema", node=RunSchema)
+    """The run's schema, and one schema per option group whose options name it in their defaults
+    list (``conf/probes/*.yaml``: ``defaults: [probes_schema, _self_]``; ``conf/data/toy.yaml``:
+    ``logbook_schema``, defined beside its range checks in ``toy_corpus/config.py``)."""
+    store = ConfigStore.instance()
+    store.store(name="run_schema", node=RunSchema)
+    store.store(group="probes", name="probes_schema", node=ProbesSchema)
+    store.store(group="data", name="logbook_schema", node=LogbookSchema)
 
 
 def _positive(key: str, value, kind=(int, float)) -> None:
-    if isinstance(value, bool) or not isinstance(value, kind) or not value > 0 or not math.isfinite(value):
-        raise ConfigError(f"{key}={value!r}: must be a positive, finite number")
+    if kind is int:
+        positive_int(key, value, error=ConfigError)
+    else:
+        positive_number(key, value, error=ConfigError)
 
 
-def validate(cfg) -> None:
+def check_ranges(cfg) -> None:
     """Range and divisibility checks that types cannot express. Raises ConfigError."""
     m, o, b, r = cfg.model, cfg.optim, cfg.budget, cfg.runtime
     if cfg.seed < 0:
@@ -137,10 +167,12 @@ def validate(cfg) -> None:
         raise ConfigError("attention: no attention block chosen; pick one with attention=<name>")
     if "_target_" not in cfg.attention:
         raise ConfigError("attention._target_: missing; an attention YAML must name its class")
-    validate_grid(cfg.grid)
+    check_grid(cfg.grid)
 
 
-def validate_grid(grid) -> None:
+def check_grid(grid) -> None:
     if not 0.0 <= grid.tolerance < 1.0:
         raise ConfigError(f"grid.tolerance={grid.tolerance!r}: must be in [0, 1)")
-    _positive("grid.target_halfwidth", grid.target_halfwidth)
+    _positive("grid.resolution", grid.resolution)
+    if grid.max_seeds is not None:
+        _positive("grid.max_seeds", grid.max_seeds, int)

@@ -101,3 +101,48 @@ def seeds_needed(std: float, halfwidth: float, level: float = 0.95) -> tuple[int
         else:
             lo = mid
     return n_normal, hi
+
+
+def holm(pvalues) -> np.ndarray:
+    """Holm (1979) step-down adjusted p-values, controlling the family-wise error rate.
+
+    Sort the m p-values ascending, p_(1) <= ... <= p_(m); then
+
+        p~_(i) = max_{j <= i} min(1, (m - j + 1) p_(j))
+
+    and p~ is returned in the input order. NaN entries (no test) are left NaN and do not count in m.
+    """
+    p = np.asarray(pvalues, dtype=float).ravel()
+    out = np.full(p.shape, math.nan)
+    tested = np.flatnonzero(np.isfinite(p))
+    m = tested.size
+    if m == 0:
+        return out
+    if np.any((p[tested] < 0) | (p[tested] > 1)):
+        raise ValueError(f"p-values must lie in [0, 1], got {p.tolist()}")
+    order = tested[np.argsort(p[tested], kind="stable")]
+    scaled = np.minimum(1.0, (m - np.arange(m)) * p[order])
+    out[order] = np.maximum.accumulate(scaled)
+    return out
+
+
+def sd_interval(std: float, n: int, level: float = 0.95) -> tuple[float, float]:
+    """Chi-square interval of a normal population's SD from a sample SD ``s`` of ``n`` values:
+
+    ( s sqrt((n-1) / chi2_{q, n-1}),  s sqrt((n-1) / chi2_{1-q, n-1}) ),  q = (1 + level) / 2
+    """
+    q = _check_level(level)
+    if n < 2:
+        raise ValueError(f"need n >= 2 for a spread, got {n}")
+    df = n - 1
+    return (
+        std * math.sqrt(df / float(stats.chi2.ppf(q, df))),
+        std * math.sqrt(df / float(stats.chi2.ppf(1.0 - q, df))),
+    )
+
+
+def seeds_needed_range(std: float, n: int, halfwidth: float, level: float = 0.95) -> tuple[int, int]:
+    """Range of seeds needed for a t half-width <= ``halfwidth``: :func:`seeds_needed` (t-refined)
+    at both ends of the chi-square interval of the SD (:func:`sd_interval`, n - 1 degrees of freedom)."""
+    low_sd, high_sd = sd_interval(std, n, level)
+    return seeds_needed(low_sd, halfwidth, level)[1], seeds_needed(high_sd, halfwidth, level)[1]

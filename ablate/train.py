@@ -16,6 +16,7 @@ import sys
 from pathlib import Path
 
 from . import records
+from .checks import one_line
 from .config import CONF_DIR, CHECKOUT
 from .schema import ConfigError
 
@@ -35,8 +36,10 @@ def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
     return multirun, design, hydra_side
 
 
-def preflight(argv: list[str]) -> dict | None:
+def preflight(argv: list[str]) -> records.GridRecord | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
+    from omegaconf import OmegaConf
+
     from .grid import (check_cells, check_fairness, compose_checked, expand_jobs, find_baseline,
                        output_folder, override_dict)
 
@@ -46,29 +49,20 @@ def preflight(argv: list[str]) -> dict | None:
         _check_free(output_folder(design + hydra_side, multirun=False))
         return None
     jobs, base = expand_jobs(design, hydra_side)
-    cells, _ = check_cells(jobs)
+    cells = check_cells(jobs)
     grid = base.grid
     baseline = find_baseline(cells, grid.baseline).name
     rows = check_fairness(cells, baseline, grid.tolerance, list(grid.unequal_axes))
     settings = [override_dict(c.overrides) for c in cells]
     varied = sorted({k for d in settings for k in d if len({other.get(k) for other in settings}) > 1})
-    from omegaconf import OmegaConf
-
-    sweep_dir = output_folder(design + hydra_side, multirun=True)  # the folder Hydra's launcher will use
-    return {
-        "recipe": base.hydra.runtime.choices.get("recipe"),
-        "name": str(grid.name),
-        "baseline": baseline,
-        "varied": [v for v in varied if v != "seed"],
-        "unequal_axes": list(grid.unequal_axes),
-        "tolerance": grid.tolerance,
-        "target_halfwidth": grid.target_halfwidth,
-        "sweep": OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None,
-        "jobs": len(jobs),
-        "seeds": sorted({int(override_dict(j).get("seed", base.seed)) for j in jobs}),
-        "fairness": rows,
-        "dir": str(sweep_dir),
-    }
+    return records.GridRecord(
+        name=str(grid.name), dir=str(output_folder(design + hydra_side, multirun=True)), baseline=baseline,
+        recipe=base.hydra.runtime.choices.get("recipe"), primary_metric=str(grid.primary_metric),
+        resolution=float(grid.resolution), max_seeds=grid.max_seeds,
+        varied=[v for v in varied if v != "seed"], unequal_axes=list(grid.unequal_axes), tolerance=grid.tolerance,
+        sweep=OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None, jobs=len(jobs),
+        seeds=sorted({int(override_dict(j).get("seed", base.seed)) for j in jobs}), fairness=rows,
+    )
 
 
 def _check_free(run_dir: Path) -> None:
@@ -93,7 +87,7 @@ def _note_running_elsewhere(grid_dir: Path, exc: records.FolderBusy) -> None:
         f.write(line)
 
 
-def _task_impl(cfg) -> dict | None:
+def _task_impl(cfg) -> records.RunSummary | None:
     from hydra.core.hydra_config import HydraConfig
     from hydra.types import RunMode
 
@@ -113,11 +107,11 @@ def _task_impl(cfg) -> dict | None:
     from omegaconf import OmegaConf
 
     fingerprint = records.config_fingerprint(OmegaConf.to_container(cfg, resolve=True))
-    done = records.read_json(run_dir / records.SUMMARY)
-    if done and done.get("status") in ("completed", "diverged") and done.get("fingerprint") == fingerprint:
+    done = records.read_summary(run_dir)
+    if done and done.status in ("completed", "diverged") and done.fingerprint == fingerprint:
         # the same config and seed give the same numbers, so running it again would repeat them
-        print(f"skip {run_dir.name}: already {done['status']} with the same config", flush=True)
-        if done["status"] == "diverged" and not in_grid:
+        print(f"skip {run_dir.name}: already {done.status} with the same config", flush=True)
+        if done.status == "diverged" and not in_grid:
             sys.exit(1)
         return done
     try:
@@ -129,16 +123,16 @@ def _task_impl(cfg) -> dict | None:
             sys.exit(EXIT_CONFIG)
         print(f"skip {run_dir.name}: running elsewhere ({exc})", flush=True)
         _note_running_elsewhere(Path(os.path.abspath(hc.sweep.dir)), exc)
-        return {"status": "running_elsewhere", **exc.holder}
+        return None  # no summary of this launch: the cell is listed in the grid's epilogue
 
 
-def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> dict | None:
+def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> records.RunSummary | None:
     """One run, its failure path included, while this process holds the run folder's lock."""
-    from .grid import validate_all
+    from .grid import check_all
     from .runner import Interrupted, run
 
     try:
-        validate_all(cfg)
+        check_all(cfg)
         summary = run(cfg, info, parallel_jobs=n_jobs if in_grid else None)
     except Interrupted as exc:
         print(f"h2h-train: {exc}", file=sys.stderr, flush=True)
@@ -151,7 +145,8 @@ def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> dict | None:
         print(f"h2h-train: error: {exc}", file=sys.stderr, flush=True)
         if not in_grid:
             sys.exit(1)
-        return {"status": "failed", "error": str(exc)}
+        return records.RunSummary(status="failed", attention=info.choices.get("attention"), cell=info.cell,
+                                  seed=int(cfg.seed), error=str(exc))
     except (ConfigError, records.CheckpointError) as exc:
         if not in_grid:
             with open(run_dir / "train.log", "a") as log:  # the folder keeps the reason
@@ -168,45 +163,38 @@ def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> dict | None:
         traceback.print_exc()
         return None
     _report_run(summary, run_dir)
-    if summary["status"] == "diverged" and not in_grid:
+    if summary.status == "diverged" and not in_grid:
         sys.exit(1)
     return summary
 
 
-def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> dict:
-    summary = {
-        "status": "failed",
-        "attention": info.choices.get("attention"),
-        "cell": info.cell,
-        "seed": int(cfg.seed),
-        "error": f"{type(exc).__name__}: {exc}".splitlines()[0],
-        "probes": {},
-    }
-    earlier = records.read_json(run_dir / records.SUMMARY)
-    if earlier and earlier.get("status") != "failed":
+def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> records.RunSummary:
+    summary = records.RunSummary(
+        status="failed", attention=info.choices.get("attention"), cell=info.cell, seed=int(cfg.seed),
+        choices=info.choices, overrides=info.overrides, error=one_line(f"{type(exc).__name__}: {exc}", 1000),
+    )
+    earlier = records.read_summary(run_dir)
+    if earlier and earlier.status != "failed":
         # e.g. a grid relaunched after its recipe changed: the earlier result stays, under another name
-        kept = run_dir / f"summary.{earlier.get('fingerprint') or 'earlier'}.json"
+        kept = run_dir / f"summary.{earlier.fingerprint or 'earlier'}.json"
         (run_dir / records.SUMMARY).replace(kept)
-        print(f"run {run_dir.name}: its earlier {earlier.get('status')} summary was kept as {kept.name}",
+        print(f"run {run_dir.name}: its earlier {earlier.status} summary was kept as {kept.name}",
               file=sys.stderr, flush=True)
-    records.write_json(run_dir / records.SUMMARY, summary)
-    print(f"run {run_dir.name} failed: {summary['error']}", file=sys.stderr, flush=True)
+    records.write_summary(run_dir, summary)
+    print(f"run {run_dir.name} failed: {summary.error}", file=sys.stderr, flush=True)
     return summary
 
 
-def _report_run(summary: dict, run_dir: Path) -> None:
-    if summary["status"] == "completed":
-        print(
-            f"done {summary['cell']} seed {summary['seed']}: val loss {summary['final_val_loss']:.4f} after {summary['tokens']:,} tokens "
-            f"in {summary['wall_seconds']:.0f} s -> {run_dir}", flush=True,
-        )
-    elif summary["status"] == "diverged":
-        print(
-            f"DIVERGED {summary['cell']} seed {summary['seed']}: non-finite loss or gradient at {summary['diverged_at_tokens']:,} tokens "
-            f"(last finite loss {summary['last_finite_loss']}); event files kept in {run_dir}", file=sys.stderr, flush=True,
-        )
-    elif summary["status"] == "stopped":
-        print(f"stopped {run_dir.name} at step {summary['step']} as asked (runtime.stop_after_steps); "
+def _report_run(s: records.RunSummary, run_dir: Path) -> None:
+    if s.status == "completed":
+        drill = f", held-out accuracy {s.probes['drill/acc']:.3f}" if "drill/acc" in s.probes else ""
+        print(f"done {s.cell} seed {s.seed}: val loss {s.final_val_loss:.4f}{drill} after {s.tokens:,} tokens "
+              f"in {s.wall_seconds:.0f} s -> {run_dir}", flush=True)
+    elif s.status == "diverged":
+        print(f"DIVERGED {s.cell} seed {s.seed}: non-finite loss or gradient at {s.diverged_at_tokens:,} tokens "
+              f"(last finite loss {s.last_finite_loss}); event files kept in {run_dir}", file=sys.stderr, flush=True)
+    elif s.status == "stopped":
+        print(f"stopped {run_dir.name} at step {s.step} as asked (runtime.stop_after_steps); "
               "run the same command without it to continue", flush=True)
 
 
@@ -237,6 +225,7 @@ def main(argv: list[str] | None = None) -> None:
 
 def _main(argv: list[str] | None = None) -> None:
     argv = list(sys.argv[1:] if argv is None else argv)
+    grid = None
     if not any(a in PASS_THROUGH or a.startswith(("--cfg", "--package")) for a in argv):
         try:
             grid = preflight(argv)
@@ -246,19 +235,27 @@ def _main(argv: list[str] | None = None) -> None:
         if grid is not None:
             from .grid import format_table
 
-            Path(grid["dir"]).mkdir(parents=True, exist_ok=True)
-            (Path(grid["dir"]) / ELSEWHERE).unlink(missing_ok=True)  # notes of an earlier launch
-            records.write_json(Path(grid["dir"]) / records.GRID, grid)
-            print(f"grid {grid['name']}: {grid['jobs']} runs, baseline {grid['baseline']}, into {grid['dir']}")
-            print(format_table(grid["fairness"]), flush=True)
-    else:
-        grid = None
-    # Hydra's parser wants -m before the overrides; accept it anywhere.
+            Path(grid.dir).mkdir(parents=True, exist_ok=True)
+            (Path(grid.dir) / ELSEWHERE).unlink(missing_ok=True)  # notes of an earlier launch
+            records.write_grid(grid)
+            print(f"grid {grid.name}: {grid.jobs} runs, baseline {grid.baseline}, into {grid.dir}")
+            print(format_table(grid.fairness), flush=True)
+    _launch(argv)
+    if grid is not None:
+        from .rounds import more_rounds
+
+        more_rounds(grid, argv, _launch)
+        _grid_epilogue(Path(grid.dir))
+
+
+def _launch(argv: list[str]) -> None:
+    """Hand the command line to Hydra. Its parser wants -m before the overrides; accept it anywhere."""
     multirun_flags = [a for a in argv if a in ("-m", "--multirun")]
     sys.argv = [sys.argv[0]] + multirun_flags + [a for a in argv if a not in multirun_flags]
+    from hydra.core.global_hydra import GlobalHydra
+
+    GlobalHydra.instance().clear()  # a second seed round starts Hydra again in this process
     _hydra_app()()
-    if grid is not None:
-        _grid_epilogue(Path(grid["dir"]))
 
 
 def _running_elsewhere(grid_dir: Path) -> list[dict]:
@@ -277,9 +274,9 @@ def _grid_epilogue(grid_dir: Path) -> None:
     the failed, diverged and running-elsewhere runs by name, and what to run next. The cells
     running elsewhere are kept in ``grid.json`` (``GridRecord.running_elsewhere``)."""
     statuses = {}
-    for path in sorted(grid_dir.glob("*/summary.json")):
-        s = records.read_json(path) or {}
-        statuses.setdefault(s.get("status", "unknown"), []).append(path.parent.name)
+    for path in sorted(grid_dir.glob(f"*/{records.SUMMARY}")):
+        s = records.read_summary(path.parent)
+        statuses.setdefault(s.status if s else "unreadable", []).append(path.parent.name)
     elsewhere = _running_elsewhere(grid_dir)
     record = records.read_grid(grid_dir)
     if record is not None and (elsewhere or record.running_elsewhere):

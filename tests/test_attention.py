@@ -182,3 +182,77 @@ def test_bad_arguments_name_the_argument(kwargs, words):
         cls(**kwargs)
     for word in words:
         assert word in str(err.value)
+
+
+def naive_full_window_differential(block: DifferentialAttention, x: torch.Tensor) -> torch.Tensor:
+    """The full-window form: (A1 - lambda A2) V with both [time, time] maps from the block's own
+    attention_weights (explicit products over every key, future ones masked)."""
+    b, t, _ = x.shape
+    v = block._values(x)
+    o = block.attention_weights(x) @ v
+    if block.use_head_norm:
+        o = o / torch.sqrt(o.pow(2).mean(-1, keepdim=True) + 1e-5) * (1 - block.lambda_init)
+    return block.out_proj(o.transpose(1, 2).reshape(b, t, -1))
+
+
+@pytest.mark.parametrize("time", [130, 200])
+def test_differential_over_several_causal_chunks_matches_published_equations(time):
+    # Ye et al., ICLR 2025, Eq. 1 (reference_differential above); 130 and 200 keys split into
+    # 4 query chunks (the last one shorter at 130), so every off-diagonal block is exercised.
+    from ablate.attention.common import causal_chunks
+
+    assert len(causal_chunks(time)) == 4
+    block = DifferentialAttention(D_MODEL, 2, 4, HEAD_DIM)
+    _randomise_lambda(block)
+    x = torch.randn(2, time, D_MODEL)
+    assert (block(x) - reference_differential(block, x)).abs().max().item() <= 1e-5
+
+
+def test_causal_chunks_cover_the_window_once_in_order():
+    from ablate.attention.common import causal_chunks
+
+    for time in (1, 24, 31, 64, 130, 256, 1000):
+        chunks = causal_chunks(time)
+        assert chunks[0][0] == 0 and chunks[-1][1] == time
+        assert all(a[1] == b[0] for a, b in zip(chunks, chunks[1:]))
+        assert len(chunks) <= 4 and all(e > s for s, e in chunks)
+
+
+@pytest.mark.parametrize("head_norm", [True, False])
+def test_differential_gradients_match_naive_full_window_form(head_norm):
+    # The chunked forward and the full-window form are the same function, so autograd must give
+    # the same gradients for every parameter (lambda vectors included) and for the input.
+    block = DifferentialAttention(D_MODEL, 1, 4, HEAD_DIM, head_norm=head_norm).double()
+    _randomise_lambda(block)
+    x = torch.randn(2, 150, D_MODEL, dtype=torch.float64, requires_grad=True)
+    target = torch.randn(2, 150, D_MODEL, dtype=torch.float64)
+    grads = []
+    for forward in (block, lambda t: naive_full_window_differential(block, t)):
+        block.zero_grad(set_to_none=True)
+        x.grad = None
+        (forward(x) * target).sum().backward()
+        grads.append([x.grad.clone()] + [p.grad.clone() for p in block.parameters()])
+    for fast, naive in zip(*grads):
+        assert (fast - naive).abs().max().item() <= 1e-10 * max(1.0, naive.abs().max().item())
+
+
+def test_differential_declared_flops_are_the_full_window_convention():
+    # Ye et al. 2025 shapes: 2h query groups of width d, values 2d wide; over a full window of
+    # seq_len keys, forward FLOPs per token = 2 n (2 h d) + 2 * 2 n (h 2d) = 12 n h d. The
+    # chunked kernel executes less; the accounting keeps the nominal figure (PERFORMANCE.md).
+    block = DifferentialAttention(D_MODEL, 0, 4, HEAD_DIM)
+    h, d = block.n_heads, block.head_dim
+    for seq_len in (64, 256):
+        assert block.core_flops_per_token(seq_len) == 12 * seq_len * h * d
+
+
+def test_full_window_context_gives_one_range_and_the_same_output():
+    from ablate.attention.common import causal_chunks, full_window_products
+
+    block = DifferentialAttention(D_MODEL, 1, 4, HEAD_DIM)
+    x = torch.randn(1, 200, D_MODEL)
+    chunked = block(x)
+    with full_window_products():
+        assert causal_chunks(200) == [(0, 200)]
+        assert (block(x) - chunked).abs().max().item() <= 1e-5
+    assert len(causal_chunks(200)) == 4  # back to chunks outside the context

@@ -1,3 +1,5 @@
+import math
+
 import numpy as np
 import pytest
 
@@ -78,31 +80,19 @@ def test_ratio_from_fitted_exact_points_matches_closed_form():
     rng = np.random.default_rng(6)
     base = _cells(2.0, 100.0, 0.35, SIZES, 2, 0.0, rng)
     cand = _cells(2.0, 80.0, 0.35, SIZES, 2, 0.0, rng)
-    result, base_fit, cand_fit = compare("standard", base, "differential", cand, "params", resamples=50, seed=0)
+    result, base_fit, cand_fit = compare(
+        "standard", base, "differential", cand, "params", resamples=50, seed=0
+    )
     expected = (80.0 / 100.0) ** (1 / 0.35)
     assert result.ratio == pytest.approx(expected, rel=1e-4)
     # No noise: every resample is the same data, so the interval collapses onto the ratio.
-    assert (result.ci_low, result.ci_high) == (pytest.approx(expected, rel=1e-4), pytest.approx(expected, rel=1e-4))
+    assert (result.ci_low, result.ci_high) == (
+        pytest.approx(expected, rel=1e-4),
+        pytest.approx(expected, rel=1e-4),
+    )
     assert result.x_mid == pytest.approx(np.exp(np.log(SIZES).mean()))
-    assert "differential reaches standard's loss with 53% (95% CI" in result.sentence()
-
-
-def test_bootstrap_interval_covers_true_ratio_near_nominal_rate():
-    # Seeded simulation: 60 sweeps x 100 bootstrap resamples, 6 sizes x 3 seeds per choice,
-    # noise sd 0.02 nats, baseline 2 + 100 x^-0.35, candidate 2 + 80 x^-0.35 (true R = 0.529).
-    # Observed when written: 54 of 60 intervals covered (0.90). The percentile bootstrap runs a
-    # little below the nominal 0.95 with 3 seeds per cell, since resampling n of n shrinks the
-    # variance by (n - 1) / n (common practice, no source). Accepted range [0.80, 0.99].
-    rng = np.random.default_rng(2024)
-    truth = (80.0 / 100.0) ** (1 / 0.35)
-    sims, covered = 60, 0
-    for sim in range(sims):
-        base = _cells(2.0, 100.0, 0.35, SIZES, 3, 0.02, rng)
-        cand = _cells(2.0, 80.0, 0.35, SIZES, 3, 0.02, rng)
-        result, _, _ = compare("standard", base, "differential", cand, "params", resamples=100, seed=sim)
-        covered += result.ci_low <= truth <= result.ci_high
-    print(f"bootstrap coverage {covered}/{sims}")
-    assert 0.80 <= covered / sims <= 0.99
+    assert result.determined and result.approximate  # 2 seeds: labelled approximate
+    assert "differential reaches standard's loss with 53% (approximate 95% CI" in result.sentence()
 
 
 def test_compare_uses_one_curve_kind_for_both():
@@ -115,12 +105,112 @@ def test_compare_uses_one_curve_kind_for_both():
     assert "to match differential" in base_fit.note
 
 
-def test_compare_refuses_too_few_sizes_and_rising_loss():
+def test_compare_refuses_too_few_sizes_and_bad_axis():
     rng = np.random.default_rng(8)
     with pytest.raises(EfficiencyError, match="at least 3 distinct"):
-        compare("a", _cells(2, 100, 0.35, SIZES[:2], 3, 0.0, rng), "b", _cells(2, 80, 0.35, SIZES, 3, 0.0, rng), "params")
-    rising = {float(s): np.full(3, 1.0 + 1e-7 * s) for s in SIZES}
-    with pytest.raises(EfficiencyError, match="does not fall"):
-        compare("a", rising, "b", _cells(2, 80, 0.35, SIZES, 3, 0.0, rng), "params", resamples=10)
+        compare(
+            "a",
+            _cells(2, 100, 0.35, SIZES[:2], 3, 0.0, rng),
+            "b",
+            _cells(2, 80, 0.35, SIZES, 3, 0.0, rng),
+            "params",
+        )
+    flat = {float(s): np.full(3, 3.0) for s in SIZES}
     with pytest.raises(EfficiencyError, match="axis"):
-        compare("a", rising, "b", rising, "depth")
+        compare("a", flat, "b", flat, "depth")
+
+
+def test_rising_loss_is_not_determined():
+    rng = np.random.default_rng(8)
+    rising = {float(s): np.full(3, 1.0 + 1e-7 * s) for s in SIZES}
+    result, _, _ = compare("a", rising, "b", _cells(2, 80, 0.35, SIZES, 3, 0.0, rng), "params", resamples=10)
+    assert not result.determined and "does not fall" in result.reason
+    assert result.sentence().startswith("b vs a: not determined by this sweep")
+
+
+def test_flat_sweep_is_not_determined():
+    # Loss the same at every size (exponent exactly 0 on noise-free data): no size ratio exists.
+    flat = {float(s): np.full(3, 3.0) for s in SIZES}
+    rng = np.random.default_rng(12)
+    result, base_fit, _ = compare(
+        "a", flat, "b", _cells(2.0, 80.0, 0.35, SIZES, 3, 0.0, rng), "params", resamples=20
+    )
+    assert abs(base_fit.exponent) < 1e-12
+    assert not result.determined and "does not fall" in result.reason and math.isnan(result.ratio)
+    noisy = {float(s): 3.0 + np.random.default_rng(int(s)).normal(0, 0.01, 5) for s in SIZES}
+    result, _, _ = compare(
+        "a", noisy, "b", _cells(2.0, 80.0, 0.35, SIZES, 5, 0.002, rng), "params", resamples=50
+    )
+    assert not result.determined
+
+
+def test_exponent_of_exactly_zero_is_a_flat_curve_not_a_division_error():
+    from ablate.efficiency import check_pair
+
+    flat = LossCurve(LOG_LINE, 0.0, 3.0, 0.0, 1e6)
+    falling = LossCurve(POWER_LAW, 2.0, 1.0, 0.35, 1e6)
+    assert "does not fall" in check_pair(flat, falling, 1e6, (1e5, 1e7))
+    assert "does not fall" in check_pair(falling, flat, 1e6, (1e5, 1e7))
+
+
+def test_answer_outside_the_swept_range_is_not_determined():
+    # Candidate 2 + 10 x^-0.35: the baseline 2 + 100 x^-0.35 needs (10)^(1/0.35) = 720x the size,
+    # far beyond its swept 1e5..1e7 (closed form from the curve's definition).
+    rng = np.random.default_rng(13)
+    base = _cells(2.0, 100.0, 0.35, SIZES, 3, 0.002, rng)
+    cand = _cells(2.0, 10.0, 0.35, SIZES, 3, 0.002, rng)
+    result, _, _ = compare("a", base, "b", cand, "params", resamples=20)
+    assert not result.determined and "outside its swept range" in result.reason
+
+
+def _paired_cells(amplitude, seed_effect, rng, noise=0.01):
+    """Cells of one design: shared per-seed offset (same data order in every cell) plus own noise."""
+    return {
+        float(s): {
+            k: 2.0 + amplitude * s**-0.35 + e + rng.normal(0, noise) for k, e in enumerate(seed_effect)
+        }
+        for s in SIZES
+    }
+
+
+def test_well_posed_sweep_gives_the_closed_form_ratio():
+    # Known E = 2, alpha = 0.35, A = 100 vs 80: R = 0.8^(1/0.35) = 0.529 (closed form).
+    rng = np.random.default_rng(14)
+    effect = rng.normal(0, 0.01, 6)
+    result, _, _ = compare(
+        "a",
+        _paired_cells(100.0, effect, rng, 0.002),
+        "b",
+        _paired_cells(80.0, effect, rng, 0.002),
+        "params",
+        resamples=100,
+    )
+    assert result.determined and not result.approximate
+    assert result.ratio == pytest.approx(0.8 ** (1 / 0.35), rel=0.05)
+    assert result.ci_low <= 0.8 ** (1 / 0.35) <= result.ci_high
+
+
+def test_joint_bootstrap_coverage_of_paired_seeds_is_near_nominal():
+    # Seeded simulation of paired seeds: 10 seeds, a per-seed offset shared by every cell (sd 0.01)
+    # plus independent noise sd 0.01, baseline 2 + 100 x^-0.35, candidate 2 + 80 x^-0.35
+    # (true R = 0.529). 150 sweeps x 60 joint-seed resamples. Accepted coverage 0.90-0.99 at
+    # nominal 0.95 (the brief's range; binomial sd of the rate at 150 sims is about 0.018).
+    # Measured when written, same simulation: 138/150 = 0.92 at 10 seeds; 130/150 = 0.87 at 6 and
+    # 123/150 = 0.82 at 4 seeds (why intervals from few seeds are labelled approximate).
+    rng = np.random.default_rng(2024)
+    truth = 0.8 ** (1 / 0.35)
+    sims, covered = 150, 0
+    for sim in range(sims):
+        effect = rng.normal(0, 0.01, 10)
+        result, _, _ = compare(
+            "a",
+            _paired_cells(100.0, effect, rng),
+            "b",
+            _paired_cells(80.0, effect, rng),
+            "params",
+            resamples=60,
+            seed=sim,
+        )
+        covered += result.ci_low <= truth <= result.ci_high
+    print(f"joint bootstrap coverage {covered}/{sims}")
+    assert 0.90 <= covered / sims <= 0.99

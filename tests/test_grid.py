@@ -27,14 +27,14 @@ def test_fairness_gate_stops_a_grid_whose_cells_differ():
 def test_fairness_gate_lets_a_declared_unequal_axis_through():
     grid = preflight(["-m", "recipe=quickstart", "model.d_model=128,192", "attention=standard",
                       "grid.unequal_axes=[model.d_model]", "grid.baseline='model.d_model=128'"])
-    ratios = {row["cell"]: row["params_ratio"] for row in grid["fairness"]}
+    ratios = {row["cell"]: row["params_ratio"] for row in grid.fairness}
     assert len(ratios) == 2 and max(ratios.values()) > 1.5
 
 
 def test_differential_and_standard_pass_the_gate_with_their_table():
     grid = preflight(["-m", "recipe=quickstart"])
-    rows = {row["cell"]: row for row in grid["fairness"]}
-    assert grid["baseline"] == "attention=standard" and grid["jobs"] == 4
+    rows = {row["cell"]: row for row in grid.fairness}
+    assert grid.baseline == "attention=standard" and grid.jobs == 4
     assert abs(rows["attention=differential"]["params_ratio"] - 1) < 0.02
     assert rows["attention=differential"]["flops_ratio"] > 1.0
 
@@ -44,6 +44,7 @@ def report(grid_dir):
                           cwd=ROOT, timeout=300)
 
 
+@pytest.mark.e2e
 def test_smoke_grid_report_and_relaunch(tmp_path, cache):
     proc = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
     assert proc.returncode == 0, proc.stderr[-3000:]
@@ -63,6 +64,7 @@ def test_smoke_grid_report_and_relaunch(tmp_path, cache):
     assert again.stdout.count("skip") == 4 and "done " not in again.stdout
 
 
+@pytest.mark.e2e
 def test_a_a_grid_reports_a_difference_whose_interval_covers_zero(tmp_path, cache):
     # The same block under two names (a copy of standard.yaml), 3 seeds: paired by seed the
     # runs are identical, so the difference must be exactly 0 and its interval must cover 0.
@@ -87,7 +89,7 @@ def test_a_a_grid_reports_a_difference_whose_interval_covers_zero(tmp_path, cach
 def test_size_sweep_checks_each_design_at_the_same_size():
     # The swept depth may change the parameter count; attention must still match at each depth.
     grid = preflight(["-m", "recipe=size_sweep"])
-    assert grid["jobs"] == 24 and grid["sweep"]["key"] == "model.n_layers"
+    assert grid.jobs == 24 and grid.sweep["key"] == "model.n_layers"
     with pytest.raises(ConfigError, match="grid.tolerance"):
         preflight(["-m", "recipe=size_sweep", "grid.unequal_axes=[]"])
     with pytest.raises(ConfigError, match="model.d_model=192"):
@@ -99,5 +101,5 @@ def test_every_shipped_recipe_passes_its_preflight(recipe):
     """Each recipe composes, validates and passes the fairness gate as shipped, and its grid has
     the baseline it names among its cells."""
     grid = preflight(["-m", f"recipe={recipe}"])
-    assert grid["jobs"] >= 2
-    assert grid["baseline"] in {row["cell"] for row in grid["fairness"]}
+    assert grid.jobs >= 2
+    assert grid.baseline in {row["cell"] for row in grid.fairness}

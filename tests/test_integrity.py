@@ -165,7 +165,7 @@ def cell_folder(args):
 def test_grid_skips_a_cell_held_elsewhere_and_lists_it(tmp_path, cache):
     from ablate.records import read_grid
 
-    common = [*FAST, "budget.tokens=2048", "grid.name=g", f"run_root={tmp_path}"]
+    common = [*FAST, "budget.tokens=2048", "grid.name=g", "grid.baseline='attention=standard'", f"run_root={tmp_path}"]
     args = ["-m", *common, "attention=standard,differential"]
     held = cell_folder([*common, "attention=standard"])
     assert held.parent == tmp_path / "g"

@@ -4,6 +4,7 @@ import pytest
 import torch
 from hydra.utils import instantiate
 
+from ablate.attention import AttentionBlock, check_block
 from ablate.config import build_model, compose
 from conftest import NAMED_ATTENTION
 
@@ -12,6 +13,8 @@ from conftest import NAMED_ATTENTION
 def test_named_choice_builds_and_runs(attention):
     cfg = compose([f"attention={attention}", "~data"])
     block = instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
+    check_block(block)
+    assert isinstance(block, AttentionBlock)
     for name in ("q_proj", "k_proj", "v_proj", "out_proj"):
         assert getattr(block, name).bias is None
     x = torch.randn(2, 16, cfg.model.d_model)
@@ -37,4 +40,17 @@ def test_user_variant_is_one_class_plus_one_yaml(tmp_path):
     model = build_model(cfg, 256)
     assert type(model.blocks[0].attention).__name__ == "GatedAttention"
     assert model.blocks[0].attention.gate.item() == 0.5
+    check_block(model.blocks[0].attention)
     assert model(torch.randint(0, 256, (1, 8))).shape == (1, 8, 256)
+
+
+def test_a_block_without_the_contract_is_named_in_one_line():
+    class Bare(torch.nn.Module):
+        d_model = 8
+
+        def forward(self, x):
+            return x
+
+    with pytest.raises(TypeError, match="lacks q_proj, k_proj, v_proj, out_proj, attention_weights, attention_logits"):
+        check_block(Bare())
+    assert not isinstance(Bare(), AttentionBlock)

@@ -12,14 +12,19 @@ import torch
 from omegaconf import OmegaConf
 
 from ablate.attention import DifferentialAttention, StandardAttention
-from ablate.config import CONF_DIR
+from ablate.config import compose
 from ablate.model import Decoder
-from ablate.probes import PROBE_NAMES, resolve_config, run_probes
+from ablate.probes import PROBE_NAMES, check_config, run_probes
 from ablate.probes.pictures import picture_items
 from test_probes_items import DOC_START, classification_set, retrieval_set
 
 VOCAB, SEQ_LEN = 64, 64
 
+
+
+def probes_group(name: str) -> dict:
+    """The probes group as Hydra composes it (schema defaults applied)."""
+    return OmegaConf.to_container(compose([f"probes={name}", "~data"]).probes, resolve=True)
 
 def corpus():
     rng = np.random.default_rng(0)
@@ -40,7 +45,7 @@ def decoder(block):
 
 
 def default_cfg():
-    return OmegaConf.to_container(OmegaConf.load(CONF_DIR / "probes" / "default.yaml"))
+    return probes_group("default")
 
 
 @pytest.mark.parametrize("block", [StandardAttention, DifferentialAttention])
@@ -57,7 +62,7 @@ def test_every_probe_key_is_produced_and_finite(block):
                 "position/loss_pos0_16", "position/loss_pos48_64", "quantization/loss_fp32", "quantization/increase_w4",
                 "quantization/increase_a8", "attention/n_items", "probe_seconds/total", "probe_seconds/images"}
     for layer in range(2):
-        for k in ("asked_mass", "distractor_mass", "other_mass", "asked_to_distractor"):
+        for k in ("asked_share", "distractor_share", "other_share"):
             expected.add(f"attention/layer{layer}/{k}")
         for k in ("logit_top1_ratio", "logit_top10_ratio", "hidden_top1_ratio", "hidden_top10_ratio", "hidden_kurtosis"):
             expected.add(f"outliers/layer{layer}/{k}")
@@ -78,7 +83,7 @@ def test_picture_items_are_the_first_of_the_longest_length_with_two_needles():
 
 
 def test_off_config_runs_nothing():
-    cfg = OmegaConf.to_container(OmegaConf.load(CONF_DIR / "probes" / "off.yaml"))
+    cfg = probes_group("off")
     numbers, images = run_probes(decoder(StandardAttention), types.SimpleNamespace(), cfg)
     assert images == {} and set(numbers) == {"probe_seconds/total"}
 
@@ -102,7 +107,7 @@ def test_max_items_keeps_every_length():
 )
 def test_bad_config_fails_in_one_line(cfg, message):
     with pytest.raises(ValueError, match=message) as err:
-        resolve_config(cfg)
+        check_config(cfg)
     assert "\n" not in str(err.value)
 
 
@@ -121,9 +126,9 @@ def test_item_longer_than_the_window_is_refused():
 
 
 def test_config_group_files_resolve_to_the_documented_defaults():
-    default = resolve_config(OmegaConf.load(CONF_DIR / "probes" / "default.yaml"))  # a DictConfig, as Hydra gives
+    default = check_config(compose(["probes=default", "~data"]).probes)  # a DictConfig, as Hydra gives
     assert default["enabled"] == list(PROBE_NAMES) and default["images"] is True
     assert (default["n_images"], default["val_windows"], default["position_buckets"]) == (2, 8, 8)
     assert default["max_items"] is None and default["every_tokens"] is None
-    off = resolve_config(OmegaConf.load(CONF_DIR / "probes" / "off.yaml"))
+    off = check_config(compose(["probes=off", "~data"]).probes)
     assert off["enabled"] == [] and off["images"] is False

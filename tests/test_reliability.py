@@ -19,6 +19,8 @@ import torch
 
 from trainer_helpers import ROOT, SMALL_DATA, run_dirs, scalars, summary, train
 
+pytestmark = pytest.mark.e2e  # runs the real commands in a subprocess
+
 SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA, "runtime.threads=1"]
 RESUMABLE = [*SMOKE, "budget.checkpoint_every_tokens=2048"]  # 16 steps of 1024 tokens, a checkpoint every 2
 # AdamW at this lr gives a non-finite loss at step 2 of the smoke run (seen, not assumed); written
@@ -76,7 +78,7 @@ def error_lines(proc):
 def grid(tmp_path_factory, cache):
     """A 2-cell grid over the learning rate: one cell trains, the other diverges."""
     root = tmp_path_factory.mktemp("grid")
-    proc = train(["-m", *RESUMABLE, f"optim.lr=0.002,{DIVERGING_LR}"], root, cache)
+    proc = train(["-m", *RESUMABLE, f"optim.lr=0.002,{DIVERGING_LR}", "grid.baseline='optim.lr=0.002'"], root, cache)
     assert proc.returncode == 0, proc.stderr[-3000:]
     runs = {summary(d)["status"]: d for d in run_dirs(root)}
     assert set(runs) == {"completed", "diverged"}, runs
@@ -133,7 +135,7 @@ def test_sigint_stops_with_exit_130_a_fresh_checkpoint_and_a_resume_hint(interru
 
 
 def test_sigterm_and_sigint_wait_for_the_step_inside_the_loop_and_interrupt_outside():
-    from ablate.runner import StopSignals
+    from ablate.signals import StopSignals
 
     def deliver(sig):
         os.kill(os.getpid(), sig)
@@ -402,10 +404,10 @@ def test_a_failure_keeps_the_folders_earlier_result(tmp_path):
 
     earlier = {"status": "completed", "fingerprint": "abc123", "final_val_loss": 2.6}
     records.write_json(tmp_path / records.SUMMARY, earlier)
-    info = SimpleNamespace(choices={"attention": "standard"}, cell="attention=standard")
+    info = SimpleNamespace(choices={"attention": "standard"}, cell="attention=standard", overrides=["attention=standard"])
     failed = _record_failure(tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("written by another config"))
     assert records.read_json(tmp_path / "summary.abc123.json") == earlier
-    assert records.read_json(tmp_path / records.SUMMARY) == failed and failed["status"] == "failed"
+    assert records.read_summary(tmp_path) == failed and failed.status == "failed"
     # a second failure replaces the first failure only: nothing else to keep
     _record_failure(tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("again"))
     assert sorted(p.name for p in tmp_path.iterdir()) == ["summary.abc123.json", "summary.json"]

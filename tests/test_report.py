@@ -1,6 +1,7 @@
 """h2h-report on hand-made run folders (summary.json + TensorBoard event files written here).
 
-Expected numbers come from scipy.stats (t.interval, ttest_rel), not from the report's own code.
+Expected numbers come from scipy.stats (t.interval, ttest_rel, chi2.ppf), statsmodels
+(multipletests) or hand computation, never from ablate.stats.
 """
 
 import csv
@@ -14,8 +15,8 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from ablate import report
-from ablate.stats import seeds_needed
+from ablate import records, report
+from ablate.report import load, table
 
 ROOT = Path(__file__).resolve().parents[1]
 SEEDS = [0, 1, 2]
@@ -27,10 +28,18 @@ RETRIEVAL = {"standard": 0.5, "differential": 0.8}  # base accuracy, lowered wit
 
 def _summary(attention, seed, **extra):
     base = {
-        "status": "completed", "attention": attention, "seed": seed, "cell": f"attention={attention}",
-        "choices": {"attention": attention}, "params": 1_200_000, "non_embedding_params": 800_000,
-        "flops_per_token": 4.8e6 if attention == "standard" else 5.0e6, "tokens": 2_000_000,
-        "train_flops": (4.8e6 if attention == "standard" else 5.0e6) * 2_000_000, "wall_seconds": 60.0,
+        "status": "completed",
+        "attention": attention,
+        "seed": seed,
+        "cell": f"attention={attention}",
+        "choices": {"attention": attention},
+        "params": 1_200_000,
+        "non_embedding_params": 800_000,
+        "flops_per_token": 4.8e6 if attention == "standard" else 5.0e6,
+        "tokens": 2_000_000,
+        "train_flops": (4.8e6 if attention == "standard" else 5.0e6) * 2_000_000,
+        "wall_seconds": 60.0,
+        "budget_match": "tokens",
     }
     base.update(extra)
     return base
@@ -52,8 +61,10 @@ def _write_run(folder: Path, summary: dict, curves: dict | None = None, subdir: 
 
 def _curves(attention, seed, final):
     steps = [250_000 * k for k in range(1, 9)]
-    curves = {"loss/val": [(s, final + 3.0 * math.exp(-s / 6e5) + 0.001 * seed) for s in steps],
-              "loss/train": [(s, final + 3.1 * math.exp(-s / 6e5)) for s in steps]}
+    curves = {
+        "loss/val": [(s, final + 3.0 * math.exp(-s / 6e5) + 0.001 * seed) for s in steps],
+        "loss/train": [(s, final + 3.1 * math.exp(-s / 6e5)) for s in steps],
+    }
     if attention == "differential":
         for layer in range(2):
             curves[f"lambda/layer_{layer}"] = [(s, 0.2 + 0.1 * layer - 0.01 * k) for k, s in enumerate(steps)]
@@ -66,8 +77,23 @@ def _probes(attention, i):
         for depth in (0.25, 0.75):
             for distractors in (2, 4):
                 probes[f"retrieval/acc_len{length}_depth{depth}_dist{distractors}"] = round(
-                    RETRIEVAL[attention] - length / 1000 - depth / 10 - distractors / 100 + 0.01 * i, 4)
+                    RETRIEVAL[attention] - length / 1000 - depth / 10 - distractors / 100 + 0.01 * i, 4
+                )
     return probes
+
+
+def _grid_json(root, baseline="attention=standard", **extra):
+    records.write_grid(
+        records.GridRecord(
+            name=root.name,
+            dir=str(root),
+            baseline=baseline,
+            recipe="test_recipe",
+            varied=["attention"],
+            seeds=SEEDS,
+            **extra,
+        )
+    )
 
 
 @pytest.fixture(scope="module")
@@ -76,19 +102,43 @@ def grid(tmp_path_factory):
     for attention in ("standard", "differential"):
         for i, seed in enumerate(SEEDS):
             loss = LOSSES[attention][i]
-            _write_run(root / f"attention={attention}" / f"seed={seed}",
-                       _summary(attention, seed, final_val_loss=loss, probes=_probes(attention, i)),
-                       _curves(attention, seed, loss), subdir="tb" if seed % 2 == 0 else None)
+            probes = {
+                **_probes(attention, i),
+                "copy/copy_level": 0.25,
+                "copy/n_items": 100.0,
+                "probe_seconds/copy": 1.0 + i,
+            }
+            _write_run(
+                root / f"attention={attention},seed={seed}",
+                _summary(attention, seed, final_val_loss=loss, probes=probes),
+                _curves(attention, seed, loss),
+                subdir="tb" if seed % 2 == 0 else None,
+            )
     # Left out: a failed run (no loss) and a diverged run whose large loss would shift any average.
-    _write_run(root / "attention=differential" / "seed=3",
-               _summary("differential", 3, status="failed", error="RuntimeError: out of memory\nmore lines",
-                        final_val_loss=None, probes={}))
-    _write_run(root / "attention=standard" / "seed=3",
-               _summary("standard", 3, status="diverged", diverged_at_tokens=750_000, last_finite_loss=7.5,
-                        final_val_loss=50.0, probes={"copy/acc": 0.0}))
-    (root / "grid.json").write_text(json.dumps({
-        "recipe": "test_recipe", "baseline": "attention=standard", "varied": ["attention"],
-        "unequal_axes": [], "target_halfwidth": None}))
+    _write_run(
+        root / "attention=differential,seed=3",
+        _summary(
+            "differential",
+            3,
+            status="failed",
+            error="RuntimeError: out of memory\nmore lines",
+            final_val_loss=None,
+            probes={},
+        ),
+    )
+    _write_run(
+        root / "attention=standard,seed=3",
+        _summary(
+            "standard",
+            3,
+            status="diverged",
+            diverged_at_tokens=750_000,
+            last_finite_loss=7.5,
+            final_val_loss=50.0,
+            probes={"copy/acc": 0.0},
+        ),
+    )
+    _grid_json(root, running_elsewhere=["attention=other"])
     return root
 
 
@@ -98,7 +148,7 @@ def built(grid):
     assert code == 0
     with (grid / "summary.csv").open() as handle:
         rows = list(csv.DictReader(handle))
-    return grid, rows, (grid / "report.md").read_text()
+    return grid, rows, (grid / "report.md").read_text(), table.build(load.load_grid(grid))
 
 
 def _row(rows, cell, metric):
@@ -107,17 +157,42 @@ def _row(rows, cell, metric):
     return found[0]
 
 
-def test_csv_has_documented_columns(built):
-    _, rows, _ = built
-    assert list(rows[0].keys()) == report.CSV_COLUMNS
-    for column in ["cell", "metric", "n", "mean", "ci_low", "ci_high", "diff_to_baseline", "diff_ci_low",
-                   "diff_ci_high", "p_value", "seeds_needed"]:
+def _obj(rep, cell, metric):
+    found = [r for r in rep.rows if r.cell == cell and r.metric == metric]
+    assert len(found) == 1, (cell, metric)
+    return found[0]
+
+
+def test_csv_header_is_the_documented_one(built):
+    _, rows, _, _ = built
+    # Written out here, not read from the constant that wrote the file.
+    assert list(rows[0].keys()) == [
+        "cell",
+        "metric",
+        "kind",
+        "n",
+        "mean",
+        "ci_low",
+        "ci_high",
+        "reference",
+        "n_paired",
+        "diff_to_baseline",
+        "diff_ci_low",
+        "diff_ci_high",
+        "p_value",
+        "p_holm",
+        "resolution",
+        "seeds_needed_low",
+        "seeds_needed_high",
+        "note",
+    ]
+    for column in rows[0]:
         assert column in report.__doc__
 
 
 @pytest.mark.parametrize("metric,source", [("final_val_loss", LOSSES), ("copy/acc", COPY_ACC)])
 def test_csv_numbers_equal_scipy(built, metric, source):
-    _, rows, _ = built
+    _, rows, _, _ = built
     for attention in ("standard", "differential"):
         values = np.array(source[attention])
         row = _row(rows, f"attention={attention}", metric)
@@ -135,79 +210,109 @@ def test_csv_numbers_equal_scipy(built, metric, source):
     assert float(row["diff_ci_high"]) == pytest.approx(d_high, rel=1e-12)
     assert float(row["p_value"]) == pytest.approx(sps.ttest_rel(a, b).pvalue, rel=1e-12)
     assert row["reference"] == "attention=standard" and int(row["n_paired"]) == 3
-    # seeds needed from the std of paired differences at the default 0.01 half-width: smallest n
-    # with t(0.975, n-1) s / sqrt(n) <= 0.01, checked against scipy's t quantile directly.
-    n = int(row["seeds_needed"])
-    s = d.std(ddof=1)
-    assert sps.t.ppf(0.975, n - 1) * s / math.sqrt(n) <= 0.01 < sps.t.ppf(0.975, n - 2) * s / math.sqrt(n - 1)
     baseline_row = _row(rows, "attention=standard", metric)
     assert baseline_row["diff_to_baseline"] == "" and baseline_row["p_value"] == ""
 
 
-def test_failed_and_diverged_runs_listed_not_averaged(built):
-    _, rows, md = built
-    left_out = md.split("## Runs left out of the averages")[1].split("##")[0]
-    assert "`attention=differential/seed=3` | failed" in left_out
-    assert "RuntimeError: out of memory" in left_out and "more lines" not in left_out
-    assert "`attention=differential/seed=3` | failed | no curves logged |" in left_out
-    assert "`attention=standard/seed=3` | diverged | diverged at 750,000 tokens | last finite loss 7.5" in left_out
-    assert "8 found; 6 completed and averaged, 1 diverged, 1 failed" in md
-
-
-def test_report_opens_with_fairness_table_and_ratios(built):
-    _, _, md = built
-    sections = [line for line in md.splitlines() if line.startswith("## ")]
-    assert sections[0].startswith("## Fairness")
-    fairness = md.split("## Fairness")[1].split("##")[0]
-    diff_line = next(line for line in fairness.splitlines() if line.startswith("| `attention=differential`"))
-    # FLOPs/token ratio 5.0e6 / 4.8e6 = 1.042 (test input), params ratio 1.000.
-    assert "| 1.042 |" in diff_line and "| 1.000 |" in diff_line
-    assert "Baseline: `attention=standard` (named in grid.json)" in md
-    assert "Recipe: test_recipe" in md
-
-
-def test_seeds_sentence_in_words(built):
-    _, rows, md = built
+def test_seeds_needed_range_from_chi_square_bound_on_the_sd(built):
+    _, rows, _, _ = built
+    # Hand computation: SD interval s*sqrt(2/chi2(0.975, 2)) .. s*sqrt(2/chi2(0.025, 2)) (scipy.stats.chi2),
+    # then the smallest n with t(0.975, n-1) sd / sqrt(n) <= 0.01 at each end (scipy.stats.t).
     d = np.array(LOSSES["differential"]) - np.array(LOSSES["standard"])
-    n_normal, n_t = seeds_needed(float(d.std(ddof=1)), 0.01)
-    assert f"needs about {n_t} seeds for +/-0.01 nats (normal approximation: {n_normal})" in md
+    s = d.std(ddof=1)
+    ends = [s * math.sqrt(2 / sps.chi2.ppf(0.975, 2)), s * math.sqrt(2 / sps.chi2.ppf(0.025, 2))]
+    expected = [
+        next(n for n in range(2, 10**6) if sps.t.ppf(0.975, n - 1) * sd / math.sqrt(n) <= 0.01) for sd in ends
+    ]
+    row = _row(rows, "attention=differential", "final_val_loss")
+    assert [int(row["seeds_needed_low"]), int(row["seeds_needed_high"])] == expected
+
+
+def test_holm_column_equals_statsmodels_within_the_comparison(built):
+    from statsmodels.stats.multitest import multipletests
+
+    _, rows, md, rep = built
+    mine = [
+        r for r in rows if r["cell"] == "attention=differential" and r["kind"] == "metric" and r["p_value"]
+    ]
+    raw = [float(r["p_value"]) for r in mine]
+    # Reference: statsmodels.stats.multitest.multipletests(method="holm") (Holm, 1979).
+    expected = multipletests(raw, method="holm")[1]
+    assert [float(r["p_holm"]) for r in mine] == pytest.approx(list(expected), rel=1e-12)
+    count = rep.tests[0]
+    assert (count.tested, count.below) == (len(raw), sum(p < 0.05 for p in raw))
+    assert f"{count.below} of {count.tested} below 0.05" in md
+
+
+def test_metadata_is_context_not_tested(built):
+    _, rows, _, rep = built
+    metrics = {r.metric for r in rep.rows}
+    assert not {"copy/copy_level", "copy/n_items", "probe_seconds/copy"} & metrics
+    kinds = {r["metric"]: r["kind"] for r in rows}
+    assert (
+        kinds["copy/copy_level"] == kinds["probe_seconds/copy"] == "context" and kinds["copy/acc"] == "metric"
+    )
+    level = next(c for c in rep.context if c.key == "copy/copy_level" and c.cell == "attention=differential")
+    assert level.values == [0.25, 0.25, 0.25]
+
+
+def test_verdict_on_primary_metric_from_grid_record(built):
+    _, _, md, rep = built
+    (v,) = rep.verdicts
+    d = np.array(LOSSES["differential"]) - np.array(LOSSES["standard"])
+    low, high = sps.t.interval(0.95, 2, loc=d.mean(), scale=sps.sem(d))  # reference: scipy
+    assert (v.metric, v.cell, v.reference, v.n_paired) == (
+        "final_val_loss",
+        "attention=differential",
+        "attention=standard",
+        3,
+    )
+    assert (v.low, v.high) == (pytest.approx(low, rel=1e-12), pytest.approx(high, rel=1e-12))
+    assert v.status == ("excludes zero" if high < 0 or low > 0 else "undecided")
+    # Render check: the report opens with the verdict sentence, then the paired-difference chart.
+    body = md.split("\n\n")
+    assert body[2].startswith("- differential lowers final_val_loss by") and "3 paired seeds" in body[2]
+    assert body[3] == "![paired differences in final_val_loss](plots/paired_difference.png)"
+
+
+def test_cells_count_completed_launched_and_diverged(built):
+    _, _, _, rep = built
+    cells = {c.name: (c.completed, c.launched, c.diverged) for c in rep.cells}
+    assert cells == {"attention=standard": (3, 4, 1), "attention=differential": (3, 4, 0)}
+    assert _obj(rep, "attention=differential", "final_val_loss").reduced == "paired on 3 of 4 launched seeds"
+
+
+def test_failed_diverged_and_elsewhere_runs_listed_not_averaged(built):
+    _, _, _, rep = built
+    left = {(x.folder, x.status): x for x in rep.left_out}
+    failed = left[("attention=differential,seed=3", "failed")]
+    assert failed.reason == "RuntimeError: out of memory" and failed.where == "no curves logged"
+    diverged = left[("attention=standard,seed=3", "diverged")]
+    assert diverged.where == "diverged at 750,000 tokens" and diverged.reason == "last finite loss 7.5"
+    assert ("attention=other", "running elsewhere") in left
+
+
+def test_fairness_flags_flops_ratio_at_matched_tokens(built):
+    _, _, _, rep = built
+    row = next(f for f in rep.fairness if f.cell == "attention=differential")
+    # 5.0e6 / 4.8e6 = 1.0417 (test input) is beyond the 0.02 tolerance with tokens matched.
+    assert row.ratios["flops_per_token"] == pytest.approx(5.0 / 4.8, rel=1e-12) and "beyond" in row.flag
+    assert row.ratios["params"] == 1.0
 
 
 def test_plots_written(built):
-    grid, _, md = built
-    for name in ["val_loss.png", "lambda.png", "retrieval_heatmap.png", "bars_final_validation_loss.png",
-                 "bars_copy_within_-1_to_1.png"]:
+    grid, _, md, _ = built
+    for name in ["paired_difference.png", "val_loss.png", "lambda.png", "retrieval_heatmap.png"]:
         path = grid / "plots" / name
         assert path.exists() and path.stat().st_size > 1000, name
         assert f"(plots/{name})" in md
-    # Retrieval grid keys go to the heatmap, not to a crowded bar chart.
-    assert sorted(p.name for p in (grid / "plots").glob("bars_*")) == [
-        "bars_copy_within_-1_to_1.png", "bars_final_validation_loss.png"]
-
-
-def test_bar_groups_keep_one_kind_of_number_per_chart():
-    def row(metric, mean):
-        return report.Row("c", metric, 3, mean=mean)
-
-    rows = [row("final_val_loss", 3.2), row("attention/layer0/asked_mass", 0.4),
-            row("attention/layer1/asked_mass", 0.5), row("attention/layer0/asked_to_distractor", 12.0),
-            row("quantization/loss_w8", 3.3), row("quantization/increase_w8", 0.01)]
-    rows += [row(f"position/loss_pos{i}_{i + 1}", 3.0) for i in range(20)]
-    groups = report.bar_groups(rows, skip=set())
-    assert groups["final validation loss"] == [("final_val_loss", "final_val_loss")]
-    assert groups["attention: asked_mass"] == [("attention/layer0/asked_mass", "layer0"),
-                                               ("attention/layer1/asked_mass", "layer1")]
-    assert groups["attention: asked_to_distractor"] == [("attention/layer0/asked_to_distractor", "layer0")]
-    assert groups["quantization (larger numbers)"] == [("quantization/loss_w8", "loss_w8")]
-    assert groups["quantization (within -1 to 1)"] == [("quantization/increase_w8", "increase_w8")]
-    assert [len(groups[f"position (larger numbers) (part {k} of 2)"]) for k in (1, 2)] == [16, 4]
 
 
 def test_event_files_read_back_from_run_folder_and_tb_subfolder(grid):
     for seed, where in [(0, "tb"), (1, ".")]:
-        folder = grid / "attention=differential" / f"seed={seed}"
-        assert [p.parent.name for p in report.event_files(folder)] == [folder.name if where == "." else "tb"]
-        scalars = report.read_scalars(folder)
+        folder = grid / f"attention=differential,seed={seed}"
+        assert [p.parent.name for p in load.event_files(folder)] == [folder.name if where == "." else "tb"]
+        scalars = load.read_scalars(folder)
         expected = _curves("differential", seed, LOSSES["differential"][seed])
         assert set(scalars) == set(expected)
         steps, values = scalars["lambda/layer_1"]
@@ -216,99 +321,114 @@ def test_event_files_read_back_from_run_folder_and_tb_subfolder(grid):
         assert values == pytest.approx([v for _, v in expected["lambda/layer_1"]], rel=1e-6)
 
 
-def test_retrieval_grid_averages_over_other_axes_and_seeds():
-    table = {"c": {"retrieval/acc_len64_depth0.5_dist2": {0: 0.2, 1: 0.4},
-                   "retrieval/acc_len64_depth0.5_dist4": {0: 0.6, 1: 0.8},
-                   "retrieval/acc/len128_depth0.5": {0: 1.0},
-                   "copy/acc": {0: 0.9}}}
-    lengths, depths, acc = report.retrieval_grid(table)["c"]
-    assert lengths == [64, 128] and depths == [0.5]
-    assert acc.tolist() == [[pytest.approx(0.5), pytest.approx(1.0)]]
-    assert report.retrieval_grid({"c": {"copy/acc": {0: 1.0}}}) == {}
-    # Where the plain length x depth key exists it is used as is (it already averages the rest).
-    table["c"]["retrieval/acc_len64_depth0.5"] = {0: 0.3, 1: 0.3}
-    _, _, acc = report.retrieval_grid(table)["c"]
-    assert acc[0, 0] == pytest.approx(0.3)
+def test_console_opens_with_the_verdict_then_the_table(grid, capsys):
+    assert report.main([str(grid)]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert out[0].startswith(f"{grid.name}: differential lowers final_val_loss by")
+    assert out[1].split()[:5] == ["cell", "completed", "final_val_loss", "95%", "CI"]
+    assert "paired" in out[1]
 
 
-def test_plot_labels_drop_choices_all_cells_share():
-    labels, shared = report.short_labels(["attention=standard,budget=smoke", "attention=differential,budget=smoke"])
-    assert labels == {"attention=standard,budget=smoke": "attention=standard",
-                      "attention=differential,budget=smoke": "attention=differential"}
-    assert shared == ["budget=smoke"]
-    assert report.short_labels(["attention=standard"]) == ({"attention=standard": "attention=standard"}, [])
+def test_several_grids_open_with_one_verdict_line_each(grid, tmp_path, capsys):
+    for attention, loss in [("standard", [3.0, 3.1, 3.2]), ("differential", [3.0, 3.1, 3.2])]:
+        for seed in SEEDS:
+            _write_run(
+                tmp_path / f"attention={attention},seed={seed}",
+                _summary(attention, seed, final_val_loss=loss[seed] + 0.01 * (attention == "standard")),
+            )
+    _grid_json(tmp_path)
+    assert report.main([str(grid), str(tmp_path)]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert out[0].startswith(f"{grid.name}: ") and out[1].startswith(f"{tmp_path.name}: ")
+    # Equal offset 0.01 on every seed: no spread, no interval, no seeds number.
+    assert "no spread across 3 seeds" in out[1]
+    rep = table.build(load.load_grid(tmp_path))
+    row = _obj(rep, "attention=differential", "final_val_loss")
+    assert row.no_spread and row.seeds_needed is None and row.seeds_note == "no spread across 3 seeds"
+    assert (tmp_path / "report.md").exists()
 
 
-def test_non_finite_probe_values_are_named_not_averaged(tmp_path):
-    _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={"x/acc": 0.5}))
-    _write_run(tmp_path / "b", _summary("standard", 1, final_val_loss=3.1, probes={"x/acc": float("nan")}))
-    assert report.main([str(tmp_path)]) == 0
-    with (tmp_path / "summary.csv").open() as handle:
-        row = _row(list(csv.DictReader(handle)), "attention=standard", "x/acc")
-    assert row["n"] == "1" and float(row["mean"]) == 0.5
-    assert "1 probe value(s) were not finite numbers and were left out: `b`: x/acc" in (tmp_path / "report.md").read_text()
-
-
-def test_stopped_run_listed_with_its_step(tmp_path):
-    _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={}))
-    _write_run(tmp_path / "b", {"status": "stopped", "attention": "standard", "seed": 1,
-                                "cell": "attention=standard", "step": 40})
-    assert report.main([str(tmp_path)]) == 0
-    md = (tmp_path / "report.md").read_text()
-    assert "| `b` | stopped | stopped at step 40 | stopped early on request" in md
-
-
-def test_unfinished_run_folder_without_summary_is_listed(tmp_path):
-    _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={}))
-    unfinished = tmp_path / "b"
-    unfinished.mkdir()
-    (unfinished / "config.yaml").write_text("seed: 1\n")
-    from torch.utils.tensorboard import SummaryWriter
-
-    writer = SummaryWriter(log_dir=str(unfinished))
-    writer.add_scalar("loss/train", 6.0, global_step=8192)
-    writer.close()
-    assert report.main([str(tmp_path)]) == 0
-    md = (tmp_path / "report.md").read_text()
-    assert "| `b` | no summary | last logged at 8,192 tokens | unfinished or interrupted" in md
-
-
-def test_console_table_printed(grid, capsys):
-    assert report.main([str(grid), "--target-halfwidth", "0.02"]) == 0
-    out = capsys.readouterr().out
-    assert out.splitlines()[0].split()[:4] == ["cell", "seeds", "final", "val"]
-    assert "attention=standard *" in out and "1 run(s)" not in out and "2 run(s) left out of the averages" in out
-    assert "+/-0.02 nats" in (grid / "report.md").read_text()
-
-
-def test_baseline_without_grid_json_is_the_standard_cell(tmp_path):
-    for attention, loss in [("differential", 3.3), ("standard", 3.4), ("alpha", 3.5)]:
+def test_no_grid_json_needs_baseline(tmp_path, capsys):
+    for attention, loss in [("differential", 3.3), ("standard", 3.4)]:
         _write_run(tmp_path / attention, _summary(attention, 0, final_val_loss=loss, probes={}))
-    assert report.main([str(tmp_path)]) == 0
-    md = (tmp_path / "report.md").read_text()
-    assert "Baseline: `attention=standard` (no grid.json baseline; chosen as the cell with attention 'standard')" in md
-    assert "1 seed: no interval" in md
-    assert "No `loss/val` curves found" in md and "retrieval heatmap skipped" in md
+    assert report.main([str(tmp_path)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--baseline" in err[0]
+    assert report.main([str(tmp_path), "--baseline", "attention=differential"]) == 0
+    rep = table.build(load.load_grid(tmp_path, "attention=differential"))
+    assert rep.baseline == "attention=differential" and rep.verdicts[0].status == "one pair"
+
+
+def test_fewer_than_three_pairs_give_no_seeds_number(tmp_path):
+    for attention in ("standard", "differential"):
+        for seed in (0, 1):
+            _write_run(
+                tmp_path / f"attention={attention},seed={seed}",
+                _summary(
+                    attention,
+                    seed,
+                    final_val_loss=3.0 + 0.1 * seed + 0.01 * (seed + 1) * (attention == "differential"),
+                ),
+            )
+    _grid_json(tmp_path)
+    row = _obj(table.build(load.load_grid(tmp_path)), "attention=differential", "final_val_loss")
+    assert row.seeds_needed is None and row.seeds_note == "needs >= 3 paired seeds to estimate"
+
+
+def test_drill_tokens_to_not_reached_is_censored(tmp_path):
+    for attention in ("standard", "differential"):
+        for seed in SEEDS:
+            reached = not (attention == "differential" and seed == 2)
+            probes = {
+                "drill/auc": 0.5 + 0.01 * seed,
+                "drill/acc": 0.9,
+                "drill/copy_level": 0.125,
+                "drill/half_reached": float(reached),
+            }
+            if reached:
+                probes["drill/tokens_to_half"] = 1000.0 * (seed + 1)
+            _write_run(
+                tmp_path / f"attention={attention},seed={seed}",
+                _summary(attention, seed, final_val_loss=2.0, probes=probes),
+            )
+    _grid_json(tmp_path, primary_metric="drill/auc", resolution=0.02)
+    rep = table.build(load.load_grid(tmp_path))
+    assert rep.metric == "drill/auc" and rep.verdicts[0].metric == "drill/auc"
+    row = _obj(rep, "attention=differential", "drill/tokens_to_half")
+    assert row.censored == "not reached in 1 of 3 seeds"
+    assert math.isnan(row.mean) and math.isnan(row.diff) and math.isnan(row.p_holm)
+    assert _obj(rep, "attention=standard", "drill/tokens_to_half").mean == pytest.approx(2000.0)
+    assert "drill/half_reached" not in {r.metric for r in rep.rows}
+
+
+def test_resolution_per_unit():
+    # Rule from the brief: losses 0.01 nats, accuracies/shares/areas in [0, 1] 0.02, others none.
+    assert table.resolution_for("drill/auc", "drill/auc", 0.05, [0.4]) == 0.05
+    assert table.resolution_for("position/loss_pos0_32", "final_val_loss", 0.03, [5.0]) == 0.01
+    assert table.resolution_for("attention/layer0/asked_share", "final_val_loss", 0.03, [0.2]) == 0.02
+    assert table.resolution_for("outliers/layer0/hidden_kurtosis", "final_val_loss", 0.03, [12.0]) is None
 
 
 def test_unknown_baseline_in_grid_json_is_a_one_line_error(tmp_path, capsys):
     _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={}))
-    (tmp_path / "grid.json").write_text(json.dumps({"baseline": "attention=nope"}))
+    _grid_json(tmp_path, baseline="attention=nope")
     assert report.main([str(tmp_path)]) == 2
-    assert "names baseline 'attention=nope'" in capsys.readouterr().err
+    assert "names 'attention=nope'" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize("make", ["empty", "missing"])
 def test_exit_code_2_without_runs(tmp_path, make):
     target = tmp_path / "grid" if make == "missing" else tmp_path
-    result = subprocess.run([sys.executable, "-m", "ablate.report", str(target)], cwd=ROOT,
-                            capture_output=True, text=True, timeout=60)
+    result = subprocess.run(
+        [sys.executable, "-m", "ablate.report", str(target)],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert result.returncode == 2
     assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.stderr
     assert ("no summary.json" if make == "empty" else "not found") in result.stderr
-
-
-# ----------------------------------------------------------------------------- sweep grid
 
 
 SIZES = {"m1": 1e5, "m2": 3e5, "m3": 1e6, "m4": 3e6, "m5": 1e7}
@@ -321,50 +441,84 @@ def sweep_grid(tmp_path_factory):
     rng = np.random.default_rng(1)
     for attention, amplitude in AMPLITUDE.items():
         for model, size in SIZES.items():
-            for seed in SEEDS:
+            for seed in range(5):
                 loss = 2.0 + amplitude * size**-0.35 + rng.normal(0, 0.004)
-                _write_run(root / f"{attention}_{model}_s{seed}",
-                           _summary(attention, seed, cell=f"attention={attention},model={model}",
-                                    non_embedding_params=int(size), final_val_loss=float(loss), probes={}))
-    (root / "grid.json").write_text(json.dumps({
-        "recipe": "size_sweep", "baseline": "attention=standard,model=m1", "varied": ["attention", "model"],
-        "unequal_axes": ["model"], "target_halfwidth": 0.01, "sweep": {"axis": "params", "key": "model"}}))
+                _write_run(
+                    root / f"attention={attention},model={model},seed={seed}",
+                    _summary(
+                        attention,
+                        seed,
+                        cell=f"attention={attention},model={model}",
+                        non_embedding_params=int(size),
+                        final_val_loss=float(loss),
+                        probes={},
+                    ),
+                )
+    _grid_json(
+        root,
+        baseline="attention=standard,model=m1",
+        unequal_axes=["model"],
+        sweep={"axis": "params", "key": "model"},
+    )
     assert report.main([str(root), "--resamples", "200"]) == 0
     return root
 
 
-def test_sweep_report_writes_ratio_interval_and_plot(sweep_grid):
-    md = (sweep_grid / "report.md").read_text()
+def test_sweep_report_states_a_determined_ratio(sweep_grid):
     with (sweep_grid / "summary.csv").open() as handle:
         rows = list(csv.DictReader(handle))
-    ratio = _row(rows, "differential", "params_ratio")
+    ratio = _row(rows, "attention=differential", "params_ratio")
     truth = (80.0 / 100.0) ** (1 / 0.35)  # closed form for equal E and alpha
     assert float(ratio["mean"]) == pytest.approx(truth, rel=0.1)
     assert float(ratio["ci_low"]) < float(ratio["mean"]) < float(ratio["ci_high"])
-    assert ratio["reference"] == "standard"
-    sentence = ratio["note"]
-    assert sentence.startswith("differential reaches standard's loss with ") and "(95% CI " in sentence
-    assert sentence.endswith("of its parameters at this scale")
-    assert f"**{sentence}.**" in md
+    # Fitted per design (cell name minus the sweep key), not per attention value.
+    assert ratio["reference"] == "attention=standard"
+    assert ratio["note"].startswith("attention=differential reaches attention=standard's loss with ")
     assert (sweep_grid / "plots" / "efficiency.png").stat().st_size > 1000
-    assert "(plots/efficiency.png)" in md
 
 
 def test_sweep_cells_compare_at_the_same_sweep_point(sweep_grid):
     with (sweep_grid / "summary.csv").open() as handle:
         rows = list(csv.DictReader(handle))
-    row = _row(rows, "attention=differential,model=m3", "final_val_loss")
-    assert row["reference"] == "attention=standard,model=m3"
-    assert "compared with the baseline's design at the same sweep point" in (sweep_grid / "report.md").read_text()
+    assert (
+        _row(rows, "attention=differential,model=m3", "final_val_loss")["reference"]
+        == "attention=standard,model=m3"
+    )
 
 
-def test_copy_levels_are_printed_beside_the_probes_not_averaged_as_one(tmp_path):
-    levels = {"retrieval/copy_level": 0.14, "classification/copy_level": 0.173}
-    _write_run(tmp_path / "a", _summary("standard", 0, final_val_loss=3.0, probes={"retrieval/acc": 0.01, **levels}))
-    _write_run(tmp_path / "b", _summary("standard", 1, final_val_loss=3.1, probes={"retrieval/acc": 0.02, **levels}))
-    assert report.main([str(tmp_path)]) == 0
-    with (tmp_path / "summary.csv").open() as handle:
-        metrics = {row["metric"] for row in csv.DictReader(handle)}
-    assert "retrieval/acc" in metrics and not any(m.endswith("copy_level") for m in metrics)
-    text = (tmp_path / "report.md").read_text()
-    assert "`classification/acc` 0.173; `retrieval/acc` 0.140." in text
+def test_retrieval_grid_averages_over_other_axes_and_seeds():
+    from ablate.report import plots
+
+    grid_table = {
+        "c": {
+            "retrieval/acc_len64_depth0.5_dist2": {0: 0.2, 1: 0.4},
+            "retrieval/acc_len64_depth0.5_dist4": {0: 0.6, 1: 0.8},
+            "retrieval/acc/len128_depth0.5": {0: 1.0},
+            "copy/acc": {0: 0.9},
+        }
+    }
+    lengths, depths, acc = plots.retrieval_grid(grid_table)["c"]
+    assert lengths == [64, 128] and depths == [0.5]
+    assert acc.tolist() == [[pytest.approx(0.5), pytest.approx(1.0)]]
+
+
+def test_stopped_and_unfinished_runs_are_listed(tmp_path):
+    _write_run(tmp_path / "attention=standard,seed=0", _summary("standard", 0, final_val_loss=3.0, probes={}))
+    _write_run(
+        tmp_path / "attention=standard,seed=1",
+        {"status": "stopped", "attention": "standard", "seed": 1, "cell": "attention=standard", "step": 40},
+    )
+    unfinished = tmp_path / "attention=standard,seed=2"
+    unfinished.mkdir()
+    (unfinished / "config.yaml").write_text("seed: 2\n")
+    from torch.utils.tensorboard import SummaryWriter
+
+    writer = SummaryWriter(log_dir=str(unfinished))
+    writer.add_scalar("loss/train", 6.0, global_step=8192)
+    writer.close()
+    _grid_json(tmp_path)
+    rep = table.build(load.load_grid(tmp_path))
+    left = {x.folder: (x.status, x.where) for x in rep.left_out}
+    assert left["attention=standard,seed=1"] == ("stopped", "stopped at step 40")
+    assert left["attention=standard,seed=2"] == ("no summary", "last logged at 8,192 tokens")
+    assert [(c.completed, c.launched) for c in rep.cells] == [(1, 3)]

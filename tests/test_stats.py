@@ -119,3 +119,50 @@ def test_seeds_needed_zero_spread_and_bad_input():
         seeds_needed(0.01, 0.0)
     with pytest.raises(ValueError):
         seeds_needed(float("nan"), 0.01)
+
+
+def test_holm_matches_hand_computation_and_statsmodels():
+    from statsmodels.stats.multitest import multipletests
+
+    from ablate.stats import holm
+
+    # Hand computation (Holm, 1979): sorted p = 0.005, 0.01, 0.03, 0.04 with m = 4 ->
+    # 4*0.005 = 0.02, 3*0.01 = 0.03, 2*0.03 = 0.06, max(1*0.04, 0.06) = 0.06; back in input order.
+    p = [0.01, 0.04, 0.03, 0.005]
+    assert holm(p).tolist() == pytest.approx([0.03, 0.06, 0.06, 0.02], rel=1e-12)
+    # Reference implementation: statsmodels.stats.multitest.multipletests(method="holm").
+    rng = np.random.default_rng(5)
+    for _ in range(20):
+        q = rng.uniform(0, 0.2, size=int(rng.integers(1, 12)))
+        assert holm(q) == pytest.approx(multipletests(q, method="holm")[1], rel=1e-12)
+
+
+def test_holm_leaves_untested_entries_out_of_the_count():
+    from ablate.stats import holm
+
+    out = holm([0.01, float("nan"), 0.02])
+    assert math.isnan(out[1]) and out[0] == pytest.approx(0.02) and out[2] == pytest.approx(0.02)
+
+
+def test_sd_interval_matches_printed_chi_square_table():
+    from ablate.stats import sd_interval
+
+    # NIST/SEMATECH e-Handbook 1.3.6.7.4 (critical values of the chi-square distribution), 4 degrees
+    # of freedom: upper 0.025 point 11.143, lower 0.025 point 0.484. With s = 1, n = 5:
+    # (sqrt(4 / 11.143), sqrt(4 / 0.484)) = (0.599, 2.875).
+    low, high = sd_interval(1.0, 5)
+    assert low == pytest.approx(math.sqrt(4 / 11.143), rel=1e-3)
+    assert high == pytest.approx(math.sqrt(4 / 0.484), rel=2e-3)
+
+
+def test_seeds_needed_range_brackets_the_point_estimate():
+    from ablate.stats import seeds_needed_range
+
+    low, high = seeds_needed_range(0.02, 4, 0.01)
+    # Ends by hand: smallest n with t(0.975, n-1) * sd / sqrt(n) <= 0.01 for the chi-square SD bounds
+    # (scipy.stats.chi2 / scipy.stats.t).
+    ends = [0.02 * math.sqrt(3 / sps.chi2.ppf(q, 3)) for q in (0.975, 0.025)]
+    hand = [
+        next(n for n in range(2, 10**6) if sps.t.ppf(0.975, n - 1) * sd / math.sqrt(n) <= 0.01) for sd in ends
+    ]
+    assert [low, high] == hand and low <= seeds_needed(0.02, 0.01)[1] <= high

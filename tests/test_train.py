@@ -6,6 +6,8 @@ import pytest
 
 from trainer_helpers import SMALL_DATA, run_dirs, scalars, summary, tags, train
 
+pytestmark = pytest.mark.e2e  # runs the real commands in a subprocess
+
 SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA]
 
 

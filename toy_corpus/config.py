@@ -1,12 +1,19 @@
-"""Checks on a data config (the plain dict of conf/data/toy.yaml), run before anything is generated.
+"""The logbook data config: its typed shape (:class:`LogbookSchema`, plain dataclasses that the
+trainer registers as the Hydra structured-config schema of ``conf/data/toy.yaml``) and the range
+checks beside it (:func:`check_config`), run before anything is generated.
 
-Every problem raises ``ValueError`` with a one-line message naming the key and what is allowed.
+The schema says which keys exist and their types (values come from the YAML only: every field is
+required); the checks say what a type cannot (ranges, known names, sizes that fit). Every problem
+raises ``ValueError`` with a one-line message naming the key and what is allowed.
 """
 
 from __future__ import annotations
 
 import numbers
-from typing import Any, Mapping
+from dataclasses import dataclass
+from typing import Any, Dict, List, Mapping
+
+from omegaconf import MISSING
 
 from . import world as W
 from .documents import DOCUMENT_KINDS, FACT_LAYOUTS
@@ -14,6 +21,101 @@ from .documents import DOCUMENT_KINDS, FACT_LAYOUTS
 UINT16_LIMIT = 65535
 N_SPECIAL_TOKENS = 3  # <unk>, <s>, </s>
 TOKENIZER_TYPES = ("bpe", "unigram")
+
+
+# The schema: types only (Hydra refuses wrong types and unknown keys while composing). Typing's
+# List/Dict spellings, because OmegaConf reads structured configs through them.
+@dataclass
+class WorldSchema:
+    isle_pairs: int = MISSING
+    keepers: int = MISSING
+    ships: int = MISSING
+    labels: int = MISSING
+
+
+@dataclass
+class NarrativeSchema:
+    zipf: float = MISSING
+    sentences: List[int] = MISSING
+
+
+@dataclass
+class FactsSchema:
+    layout: str = MISSING
+    n_facts: List[int] = MISSING
+    value_digits: int = MISSING
+    filler_words: List[int] = MISSING
+    filler_zipf: float = MISSING
+    p_same_isle: float = MISSING
+    p_sibling: float = MISSING
+    questions: int = MISSING
+    mentions: List[int] = MISSING
+
+
+@dataclass
+class CopySchema:
+    zipf: float = MISSING
+    words: List[int] = MISSING
+    distinct: bool = MISSING
+
+
+@dataclass
+class ClassifySchema:
+    n_classes: List[int] = MISSING
+    demos_per_class: List[int] = MISSING
+    queries: int = MISSING
+    noise_features: int = MISSING
+    p_grouped: float = MISSING
+
+
+@dataclass
+class TokenizerSchema:
+    model_type: str = MISSING
+    train_documents: int = MISSING
+
+
+@dataclass
+class RetrievalSetSchema:
+    context_lens: List[int] = MISSING
+    depths: List[float] = MISSING
+    n_needles: List[int] = MISSING
+    n_asked: List[int] = MISSING
+    items_per_cell: int = MISSING
+    same_isle_distractors: int = MISSING
+    sibling_distractors: int = MISSING
+
+
+@dataclass
+class ClassificationSetSchema:
+    n_classes: List[int] = MISSING
+    n_demos: List[int] = MISSING
+    episodes: int = MISSING
+    random_orders: int = MISSING
+    grouped_orders: int = MISSING
+    queries: int = MISSING
+    noise_features: int = MISSING
+
+
+@dataclass
+class ProbeSetsSchema:
+    retrieval: RetrievalSetSchema = MISSING
+    classification: ClassificationSetSchema = MISSING
+
+
+@dataclass
+class LogbookSchema:
+    seed: int = MISSING
+    vocab_size: int = MISSING
+    n_documents: int = MISSING
+    val_fraction: float = MISSING
+    world: WorldSchema = MISSING
+    mixture: Dict[str, float] = MISSING
+    narrative: NarrativeSchema = MISSING
+    facts: FactsSchema = MISSING
+    copy: CopySchema = MISSING
+    classify: ClassifySchema = MISSING
+    tokenizer: TokenizerSchema = MISSING
+    probes: ProbeSetsSchema = MISSING
 
 
 def _get(cfg: Mapping, path: str) -> Any:
@@ -90,7 +192,13 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
     _int(cfg, "world.keepers", 2, 200)
     _int(cfg, "world.ships", 4, 400)
     _int(cfg, "world.labels", 16, 400)
+    _check_mixture(cfg)
+    _check_documents(cfg)
+    _check_tokenizer(cfg)
+    _check_probe_sets(cfg, seq_len)
 
+
+def _check_mixture(cfg: Mapping) -> None:
     mixture = _get(cfg, "mixture")
     if not isinstance(mixture, Mapping) or not mixture:
         raise ValueError(f"data.mixture={mixture!r}: must map document kinds ({', '.join(DOCUMENT_KINDS)}) to weights")
@@ -102,6 +210,9 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
     if sum(float(x) for x in mixture.values()) <= 0:
         raise ValueError(f"data.mixture: weights sum to {sum(float(x) for x in mixture.values())}; they must sum to a positive number")
 
+
+def _check_documents(cfg: Mapping) -> None:
+    mixture = _get(cfg, "mixture")
     _real(cfg, "narrative.zipf", 0.0, 3.0)
     _range(cfg, "narrative.sentences", 1, 100)
     n_lo, n_hi = _range(cfg, "facts.n_facts", 1, 24)
@@ -135,6 +246,9 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
             if w_hi > n_words:
                 raise ValueError(f"data.copy.words={[w_lo, w_hi]}: with copy.distinct=true a note has at most {n_words} "
                                  f"words (the filler lexicon); allowed: upper bound <= {n_words}")
+
+
+def _check_tokenizer(cfg: Mapping) -> None:
     model_type = _get(cfg, "tokenizer.model_type")
     if model_type not in TOKENIZER_TYPES:
         raise ValueError(f"data.tokenizer.model_type={model_type!r}; allowed: {', '.join(TOKENIZER_TYPES)}")
@@ -145,6 +259,8 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
         raise ValueError(f"data.vocab_size={vocab!r}: must be an integer in [{lo}, {hi}] for this text "
                          f"(smaller cannot hold every character; larger has no pieces left to form)")
 
+
+def _check_probe_sets(cfg: Mapping, seq_len: int) -> None:
     lens = _int_list(cfg, "probes.retrieval.context_lens", 16)
     for n in lens:
         if n > seq_len + 1:

@@ -60,6 +60,35 @@ def _needle_keys(rng: random.Random, world: World, n_needles: int, n_asked: int,
     return needles, asked, near
 
 
+def _haystack(rng: random.Random, encode: Encode, filler: ZipfPicker, budget: int) -> tuple[list[str], list[int], int]:
+    """Filler words up to ``budget`` tokens: the words, each one's token offset, the tokens used."""
+    words, word_tokens, used = [], [], 0
+    for _ in range(10 * budget + 10):
+        w = filler.one(rng)
+        n = len(encode(w))
+        if used + n > budget:
+            break
+        words.append(w)
+        word_tokens.append(used)
+        used += n
+    return words, word_tokens, used
+
+
+def _gaps(rng: random.Random, words: list[str], word_tokens: list[int], used: int, depth: float, n_needles: int,
+          asked: list[int], n_near: int) -> dict[int, list[tuple[str, int]]]:
+    """Which facts go into which gap: the asked ones at the gap nearest ``depth``, the rest at random.
+    Gap g sits before filler word g (g = len(words) is the end of the haystack)."""
+    target = depth * used
+    asked_gap = min(range(len(words) + 1), key=lambda g: abs((word_tokens[g] if g < len(words) else used) - target))
+    others = [i for i in range(n_needles) if i not in asked]
+    gap_of: dict[int, list[tuple[str, int]]] = {}
+    gap_of.setdefault(asked_gap, []).extend(("asked", i) for i in asked)
+    free_gaps = [g for g in range(len(words) + 1) if g != asked_gap] or [asked_gap]
+    for item in [("needle", i) for i in others] + [("near", j) for j in range(n_near)]:
+        gap_of.setdefault(rng.choice(free_gaps), []).append(item)
+    return gap_of
+
+
 def retrieval_item(rng: random.Random, world: World, encode: Encode, filler: ZipfPicker, context_len: int, depth: float,
                    n_needles: int, n_asked: int, n_same: int, n_sibling: int, digits: int, layout: str = "key_first") -> dict:
     needles, asked, near = _needle_keys(rng, world, n_needles, n_asked, n_same, n_sibling)
@@ -82,25 +111,8 @@ def retrieval_item(rng: random.Random, world: World, encode: Encode, filler: Zip
     if budget < 0:
         raise ValueError(f"data.probes.retrieval.context_lens: {context_len} is too short for n_needles={n_needles}, "
                          f"n_asked={n_asked} with the distractors (needs >= {fixed} tokens)")
-    words, word_tokens, used = [], [], 0
-    for _ in range(10 * budget + 10):
-        w = filler.one(rng)
-        n = len(encode(w))
-        if used + n > budget:
-            break
-        words.append(w)
-        word_tokens.append(used)
-        used += n
-    # gap g sits before filler word g (g = len(words) is the end of the haystack)
-    target = depth * used
-    asked_gap = min(range(len(words) + 1), key=lambda g: abs((word_tokens[g] if g < len(words) else used) - target))
-    others = [i for i in range(n_needles) if i not in asked]
-    gap_of: dict[int, list[tuple[str, int]]] = {}
-    gap_of.setdefault(asked_gap, []).extend(("asked", i) for i in asked)
-    free_gaps = [g for g in range(len(words) + 1) if g != asked_gap] or [asked_gap]
-    for item in [("needle", i) for i in others] + [("near", j) for j in range(len(near))]:
-        gap_of.setdefault(rng.choice(free_gaps), []).append(item)
-
+    words, word_tokens, used = _haystack(rng, encode, filler, budget)
+    gap_of = _gaps(rng, words, word_tokens, used, depth, n_needles, asked, len(near))
     out = TokenWriter(encode)
     out.add(header)
     asked_span: dict[int, list[int]] = {}
@@ -173,7 +185,6 @@ def classification_set(world: World, encode: Encode, cfg: Mapping, seed: int, se
                                          f"needs {len(out.tokens)} tokens > seq_len + 1 = {seq_len + 1}; allowed: fewer classes, "
                                          f"demonstrations, queries or noise_features")
                     items.append({"tokens": out.tokens, "answer_spans": answer_spans, "demo_label_spans": demo_spans,
-                                  "query_classes": [q["cls"] for q in ep["queries"]],
                                   "meta": {"n_classes": n_classes, "n_demos": n_demos, "ordering": ordering,
                                            "episode": episode, "order_index": order_index}})
                 episode += 1

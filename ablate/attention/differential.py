@@ -7,8 +7,8 @@ import math
 import torch
 from torch import nn
 
-from .common import causal_softmax, require_bool, require_divisible, require_positive_int
-from .rotary import Rotary
+from .base import ProjectedAttention
+from .common import causal_chunks, causal_softmax, future_bias, require_bool, require_divisible, require_positive_int
 
 LAMBDA_MODES = ("learned", "fixed")
 
@@ -28,12 +28,7 @@ def resolve_lambda_init(lambda_init, layer_index: int) -> float:
     return float(lambda_init)
 
 
-def _future_bias(time: int, like: torch.Tensor) -> torch.Tensor:
-    """``[time, time]`` additive mask: 0 where a query may attend, -inf on future keys."""
-    return torch.full((time, time), float("-inf"), dtype=like.dtype, device=like.device).triu(1)
-
-
-class DifferentialAttention(nn.Module):
+class DifferentialAttention(ProjectedAttention):
     r"""Causal differential attention with rotary positions.
 
     Each of the :math:`h = d_{model} / (2d)` heads has two query/key groups of width :math:`d`
@@ -84,22 +79,16 @@ class DifferentialAttention(nn.Module):
         lambda_std: float = 0.1,
         rope_base: float = 10000.0,
     ):
-        super().__init__()
         require_positive_int("head_dim", head_dim)
         require_bool("head_norm", head_norm)
         require_divisible("d_model", d_model, 2 * head_dim, f"2 * head_dim = {2 * head_dim}")
         if lambda_mode not in LAMBDA_MODES:
             raise ValueError(f"lambda_mode={lambda_mode!r} must be one of {', '.join(LAMBDA_MODES)}")
-        self.d_model, self.head_dim = d_model, head_dim
+        super().__init__(d_model, head_dim, rope_base, layer_index, n_layers)
         self.n_heads = d_model // (2 * head_dim)
-        self.layer_index, self.n_layers = layer_index, n_layers
         self.lambda_mode = lambda_mode
         self.lambda_init = resolve_lambda_init(lambda_init, layer_index)
-        self.q_proj = nn.Linear(d_model, d_model, bias=False)
-        self.k_proj = nn.Linear(d_model, d_model, bias=False)
-        self.v_proj = nn.Linear(d_model, d_model, bias=False)
-        self.out_proj = nn.Linear(d_model, d_model, bias=False)
-        self.rotary = Rotary(head_dim, rope_base)
+        self.lambda_std = lambda_std
         self.use_head_norm = bool(head_norm)
         self.head_norm = nn.RMSNorm(2 * head_dim, eps=1e-5, elementwise_affine=False) if head_norm else None
         if lambda_mode == "learned":
@@ -107,6 +96,16 @@ class DifferentialAttention(nn.Module):
             self.lambda_k1 = nn.Parameter(torch.randn(head_dim) * lambda_std)
             self.lambda_q2 = nn.Parameter(torch.randn(head_dim) * lambda_std)
             self.lambda_k2 = nn.Parameter(torch.randn(head_dim) * lambda_std)
+
+    def init_parameter(self, name: str, tensor: torch.Tensor, generator: torch.Generator) -> None:
+        """The lambda vectors ~ N(0, lambda_std^2), drawn from the decoder's keyed generator."""
+        if name.startswith("lambda_"):
+            with torch.no_grad():
+                tensor.copy_(torch.randn(tensor.shape, generator=generator) * self.lambda_std)
+
+    def log_scalars(self) -> dict[str, float]:
+        """The current lambda, logged by the trainer as ``lambda/layer_<i>``."""
+        return {"lambda": float(self.lambda_value().detach())}
 
     def lambda_value(self) -> torch.Tensor:
         """The current lambda as a 0-d tensor."""
@@ -141,22 +140,34 @@ class DifferentialAttention(nn.Module):
             o = self.head_norm(o) * (1.0 - self.lambda_init)
         return self.out_proj(o.transpose(1, 2).reshape(shape))
 
+    def _grouped_queries_keys(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Rotated queries and keys ``[batch * heads * 2, time, head_dim]``, each head's two groups
+        next to each other, so that one head's two maps stack into one ``[2 * rows, keys]`` matrix."""
+        b, n, _ = x.shape
+        shape, order = (b, n, 2, self.n_heads, self.head_dim), (0, 3, 2, 1, 4)
+        q = self.rotary(self.q_proj(x).view(shape).permute(order))
+        k = self.rotary(self.k_proj(x).view(shape).permute(order))
+        return q.reshape(-1, n, self.head_dim), k.reshape(-1, n, self.head_dim)
+
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         b, n, _ = x.shape
-        h, d = self.n_heads, self.head_dim
-        q, k = self._rotated_queries_keys(x)
-        v = self._values(x)
+        q, k = self._grouped_queries_keys(x)
+        v = self._values(x).reshape(b * self.n_heads, n, 2 * self.head_dim)
         lam = self.lambda_value().to(x.dtype)
-        # Scores of both groups in one batched product, the causal mask added as -inf.
-        scores = torch.baddbmm(
-            _future_bias(n, x), q.reshape(b * 2 * h, n, d), k.reshape(b * 2 * h, n, d).transpose(1, 2), alpha=d**-0.5
-        )
-        a = scores.softmax(dim=-1)  # [A_1; A_2] per head
-        # (A1 - lambda A2) V = A1 V + A2 (-lambda V): both value products in one batched product,
-        # lambda applied to the values rather than to a [time, time] map.
-        signed_v = torch.stack([v, -lam * v], dim=1).reshape(b * 2 * h, n, 2 * d)
-        o = torch.bmm(a, signed_v).view(b, 2, h, n, 2 * d).sum(dim=1)
-        return self._finish(o, x.shape)
+        bias = future_bias(n, x)
+        o = torch.cat([self._chunk_output(q[:, s:e], k[:, :e], v[:, :e], bias[s:e, :e], lam) for s, e in causal_chunks(n)], 1)
+        return self._finish(o.view(b, self.n_heads, n, 2 * self.head_dim), x.shape)
+
+    def _chunk_output(self, q, k, v, bias, lam) -> torch.Tensor:
+        """``(A1 - lambda A2) V`` for one range of queries against the keys up to its end:
+        ``q [2G, rows, d]``, ``k [2G, end, d]``, ``v [G, end, 2d]`` with G = batch * heads,
+        ``bias [rows, end]`` (the causal mask as -inf). Returns ``[G, rows, 2d]``."""
+        rows, d = q.shape[1:]
+        g = v.shape[0]
+        scores = torch.baddbmm(bias, q, k.transpose(1, 2), alpha=d**-0.5)
+        # A1 and A2 of one head stacked as [2 * rows, end]: one product with V gives [A1 V; A2 V].
+        both = torch.bmm(scores.softmax(dim=-1).view(g, 2 * rows, -1), v).view(g, 2, rows, 2 * d)
+        return torch.addcmul(both[:, 0], both[:, 1], -lam)
 
     def attention_weights(self, x: torch.Tensor) -> torch.Tensor:
         q1, k1, q2, k2 = self._queries_keys(x)

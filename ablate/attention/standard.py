@@ -9,10 +9,10 @@ import torch.nn.functional as F
 from torch import nn
 
 from .common import causal_softmax, require_bool, require_divisible, require_positive_int
-from .rotary import Rotary
+from .base import ProjectedAttention
 
 
-class StandardAttention(nn.Module):
+class StandardAttention(ProjectedAttention):
     r"""Causal multi-head self-attention with rotary positions.
 
     For each head :math:`i` with queries, keys and values :math:`Q_i, K_i, V_i`
@@ -48,18 +48,11 @@ class StandardAttention(nn.Module):
         head_norm: bool = False,
         rope_base: float = 10000.0,
     ):
-        super().__init__()
         require_positive_int("head_dim", head_dim)
         require_bool("head_norm", head_norm)
         require_divisible("d_model", d_model, head_dim, f"head_dim={head_dim}")
-        self.d_model, self.head_dim = d_model, head_dim
+        super().__init__(d_model, head_dim, rope_base, layer_index, n_layers)
         self.n_heads = d_model // head_dim
-        self.layer_index, self.n_layers = layer_index, n_layers
-        self.q_proj = nn.Linear(d_model, d_model, bias=False)
-        self.k_proj = nn.Linear(d_model, d_model, bias=False)
-        self.v_proj = nn.Linear(d_model, d_model, bias=False)
-        self.out_proj = nn.Linear(d_model, d_model, bias=False)
-        self.rotary = Rotary(head_dim, rope_base)
         self.head_norm = nn.RMSNorm(head_dim, eps=1e-5, elementwise_affine=False) if head_norm else nn.Identity()
 
     def _split(self, t: torch.Tensor) -> torch.Tensor:

@@ -1,29 +1,7 @@
 """Mechanism probes: each takes a model and a probe set (or validation windows) and returns a flat
-``name -> float`` dict; :func:`run_probes` runs the enabled ones for the trainer."""
+``name -> float`` dict; :func:`run_probes` runs the enabled ones for the trainer. The single probes
+live in their modules (``ablate.probes.retrieval``, ``.attention``, ``.outliers``, ...)."""
 
-from .attention import attention_probe, span_masses
-from .classification import classification_probe
-from .outliers import excess_kurtosis, magnitude_stats, outlier_probe
-from .pictures import attention_pictures
-from .position import position_probe
-from .quantization import fake_quantize_rows, fake_quantize_tensor, quantization_probe
-from .retrieval import retrieval_probe
-from .runner import PROBE_NAMES, resolve_config, run_probes
+from .suite import PROBE_NAMES, check_config, run_probes
 
-__all__ = [
-    "run_probes",
-    "resolve_config",
-    "PROBE_NAMES",
-    "retrieval_probe",
-    "attention_probe",
-    "span_masses",
-    "outlier_probe",
-    "magnitude_stats",
-    "excess_kurtosis",
-    "classification_probe",
-    "quantization_probe",
-    "fake_quantize_rows",
-    "fake_quantize_tensor",
-    "position_probe",
-    "attention_pictures",
-]
+__all__ = ["run_probes", "check_config", "PROBE_NAMES"]

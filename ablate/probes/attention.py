@@ -2,22 +2,21 @@
 looks.
 
 For each item, take the query position ``q = s - 1`` of its first answer span ``[s, e)`` and the
-effective attention row ``A[q, 0..q]`` of every layer (``attention_weights`` of the block, fed the
-block's own input captured with a forward hook), averaged over heads. Its mass is split into:
+attention row ``A[q, 0..q]`` of every layer (``attention_weights`` of the block, fed the block's
+own input captured with a forward hook). The row is bounded: each head's ``|A|`` row is divided by
+its sum, then the heads are averaged (``scan.bounded_rows``). Its weight is split into shares:
 
-- ``asked_mass``: keys inside the asked needle's span (``asked_spans[0]``, the needle of the first
+- ``asked_share``: keys inside the asked needle's span (``asked_spans[0]``, the needle of the first
   question);
-- ``distractor_mass``: keys inside any ``distractor_spans`` entry (and not in the asked span);
-- ``other_mass``: every other key ``0..q`` (header, filler, other asked needles, the question).
+- ``distractor_share``: keys inside any ``distractor_spans`` entry (and not in the asked span);
+- ``other_share``: every other key ``0..q`` (header, filler, other asked needles, the question).
 
-Mass is a signed sum of map entries. For softmax attention the three parts are >= 0 and add up to
-1; for differential attention the map is a difference of two softmax maps, entries can be
-negative and the three parts add up to ``1 - lambda``.
+The three shares are in [0, 1] and sum to 1 for softmax and differential maps alike (the
+differential map is a difference of two softmax maps, so its entries can be negative; taking
+magnitudes keeps the shares bounded where a signed ratio would blow up as its denominator crosses 0).
 
-Keys per layer ``i`` (from 0): ``attention/layer<i>/asked_mass``, ``.../distractor_mass``,
-``.../other_mass`` (means over items) and ``.../asked_to_distractor`` = mean asked mass /
-max(mean distractor mass, 1e-3); the floor (our choice) keeps the ratio finite when the distractor
-mass is about zero or negative. Only items with at least one distractor span are used
+Keys per layer ``i`` (from 0): ``attention/layer<i>/asked_share``, ``.../distractor_share``,
+``.../other_share`` (means over items). Only items with at least one distractor span are used
 (``attention/n_items``).
 """
 
@@ -31,7 +30,7 @@ from torch import nn
 from .common import DEFAULT_BATCH_TOKENS, check_spans
 from .scan import query_position, scan_items
 
-RATIO_FLOOR = 1e-3
+SHARES = ("asked", "distractor", "other")
 
 
 def span_mask(length: int, spans: Sequence[Sequence[int]]) -> np.ndarray:
@@ -41,16 +40,21 @@ def span_mask(length: int, spans: Sequence[Sequence[int]]) -> np.ndarray:
     return mask
 
 
-def span_masses(row: np.ndarray, query: int, asked: Sequence[Sequence[int]], distractors: Sequence[Sequence[int]]) -> tuple[float, float, float]:
-    """Split ``row[0..query]`` (one attention row over keys) into (asked, distractor, other) mass.
+def span_shares(row: np.ndarray, query: int, asked: Sequence[Sequence[int]], distractors: Sequence[Sequence[int]]) -> tuple[float, float, float]:
+    """Split ``|row[0..query]|`` (one attention row over keys, normalised to sum 1) into
+    (asked, distractor, other) shares.
 
     Keys after ``query`` are ignored (they are masked in a causal map). A key inside both an
     asked and a distractor span counts as asked.
     """
     row = np.asarray(row, dtype=np.float64)
     if not 0 <= query < row.shape[-1]:
-        raise ValueError(f"span_masses: query {query} outside a row of {row.shape[-1]} keys")
-    visible = row[: query + 1]
+        raise ValueError(f"span_shares: query {query} outside a row of {row.shape[-1]} keys")
+    visible = np.abs(row[: query + 1])
+    total = visible.sum()
+    if not total > 0:
+        raise ValueError(f"span_shares: the attention row at query {query} is all zero")
+    visible = visible / total
     asked_m = span_mask(query + 1, asked)
     distractor_m = span_mask(query + 1, distractors) & ~asked_m
     other_m = ~(asked_m | distractor_m)
@@ -73,25 +77,21 @@ def check_items(items: Sequence[dict]) -> None:
 
 
 def allocation_summary(items: Sequence[dict], rows: Sequence[np.ndarray | None]) -> dict[str, float]:
-    """Mean (asked, distractor, other) mass per layer over the items that have a row."""
+    """Mean (asked, distractor, other) share per layer over the items that have a row."""
     used = [(it, row) for it, row in zip(items, rows) if row is not None]
     if not used:
         raise ValueError("attention probe: no attention rows to summarise")
     n_layers = used[0][1].shape[0]
-    masses = np.zeros((len(used), n_layers, 3))
+    shares = np.zeros((len(used), n_layers, 3))
     for k, (it, row) in enumerate(used):
         q = query_position(it)
         for layer in range(n_layers):
-            masses[k, layer] = span_masses(row[layer], q, it["asked_spans"][:1], it["distractor_spans"])
-    mean = masses.mean(axis=0)
+            shares[k, layer] = span_shares(row[layer], q, it["asked_spans"][:1], it["distractor_spans"])
+    mean = shares.mean(axis=0)
     out: dict[str, float] = {}
     for layer in range(n_layers):
-        asked, distractor, other = (float(v) for v in mean[layer])
-        p = f"attention/layer{layer}/"
-        out[p + "asked_mass"] = asked
-        out[p + "distractor_mass"] = distractor
-        out[p + "other_mass"] = other
-        out[p + "asked_to_distractor"] = asked / max(distractor, RATIO_FLOOR)
+        for name, value in zip(SHARES, mean[layer]):
+            out[f"attention/layer{layer}/{name}_share"] = float(value)
     out["attention/n_items"] = float(len(used))
     return out
 

@@ -109,16 +109,18 @@ def attention_modules(model: nn.Module) -> list[nn.Module]:
 
 
 @contextlib.contextmanager
-def capture_attention_inputs(model: nn.Module):
-    """Records the input of every ``model.blocks[i].attention`` (the normed hidden state) during
-    forward passes; yields the list (one slot per layer, overwritten by each pass)."""
-    modules = attention_modules(model)
+def capture(modules: Sequence[nn.Module], what: str = "input"):
+    """Records the ``"input"`` (first positional) or ``"output"`` of each module during forward
+    passes; yields the list (one slot per module, overwritten by each pass). Hooks go on exit."""
     store: list[torch.Tensor | None] = [None] * len(modules)
-    handles = []
-    for layer, module in enumerate(modules):
-        def hook(_module, inputs, _output, layer=layer):
-            store[layer] = inputs[0].detach()
-        handles.append(module.register_forward_hook(hook))
+
+    def recorder(slot: int):
+        def hook(_module, inputs, output):
+            store[slot] = (inputs[0] if what == "input" else output).detach()
+
+        return hook
+
+    handles = [m.register_forward_hook(recorder(i)) for i, m in enumerate(modules)]
     try:
         yield store
     finally:
@@ -126,30 +128,22 @@ def capture_attention_inputs(model: nn.Module):
             h.remove()
 
 
-@contextlib.contextmanager
+def capture_attention_inputs(model: nn.Module):
+    """The input of every ``model.blocks[i].attention`` (the normed hidden state)."""
+    return capture(attention_modules(model), "input")
+
+
 def capture_block_outputs(model: nn.Module):
-    """Records the output of every ``model.blocks[i]`` (the residual stream after the block)."""
+    """The output of every ``model.blocks[i]`` (the residual stream after the block)."""
     attention_modules(model)
-    store: list[torch.Tensor | None] = [None] * len(model.blocks)
-    handles = []
-    for layer, block in enumerate(model.blocks):
-        def hook(_module, _inputs, output, layer=layer):
-            store[layer] = output.detach()
-        handles.append(block.register_forward_hook(hook))
-    try:
-        yield store
-    finally:
-        for h in handles:
-            h.remove()
+    return capture(list(model.blocks), "output")
 
 
 def validation_windows(val_ids: np.ndarray, seq_len: int, n_windows: int) -> np.ndarray:
     """Fixed validation windows ``int64 [n, seq_len + 1]``, chosen by the corpus package (the same
     windows the trainer's validation loss reads)."""
-    try:
-        from toy_corpus.batches import validation_windows as corpus_windows
-    except ImportError as err:  # pragma: no cover - the corpus package ships with the project
-        raise ImportError(f"probes need toy_corpus.batches.validation_windows: {err}") from err
+    from toy_corpus.batches import validation_windows as corpus_windows
+
     return corpus_windows(np.asarray(val_ids), seq_len, n_windows)
 
 

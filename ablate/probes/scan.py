@@ -2,7 +2,9 @@
 
 A forward pass over a batch gives the argmax predictions (retrieval); forward hooks on
 ``model.blocks[i].attention`` record each block's input, from which ``attention_weights`` gives the
-map whose query row at the first answer position the attention probe needs. Sharing the pass
+map whose query row at the first answer position the attention probe needs. Rows are bounded:
+each head's |A| row is divided by its sum before the heads are averaged (:func:`bounded_rows`), so
+the signed differential map gives shares in [0, 1] that sum to 1, as softmax maps do. Sharing the pass
 saves a whole forward sweep over the probe set. The wall time is split: ``forward_seconds`` (the
 forward passes) and ``rows_seconds`` (the extra ``attention_weights`` calls).
 """
@@ -11,7 +13,7 @@ from __future__ import annotations
 
 import contextlib
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
@@ -24,10 +26,16 @@ from .common import attention_modules, capture_attention_inputs, evaluating, ite
 @dataclass
 class ScanResult:
     predictions: list  # per item: argmax at every input position, or None when not asked for
-    rows: list  # per item: head-mean attention rows [layers, q + 1] at the query, or None
+    rows: list  # per item: bounded head-mean attention rows [layers, q + 1] at the query, or None
     forward_seconds: float = 0.0
     rows_seconds: float = 0.0
-    extra: dict = field(default_factory=dict)
+
+
+def bounded_rows(weights: torch.Tensor) -> torch.Tensor:
+    """``[b, heads, ..., keys]`` attention rows -> ``[b, ..., keys]``: mean over heads of
+    ``|A_h| / sum_keys |A_h|`` (each row sums to 1; a differential map's entries can be negative)."""
+    magnitude = weights.abs()
+    return (magnitude / magnitude.sum(dim=-1, keepdim=True)).mean(dim=1)
 
 
 def query_position(item: dict) -> int:
@@ -38,8 +46,8 @@ def query_position(item: dict) -> int:
 def scan_items(model: nn.Module, items: Sequence[dict], batch_tokens: int, device,
                predictions: bool = True, rows_for: Sequence[bool] | None = None) -> ScanResult:
     """Forward every item once (grouped by length); keep argmax predictions when ``predictions``
-    and, for the items flagged in ``rows_for``, the head-averaged attention row of every layer at
-    :func:`query_position`."""
+    and, for the items flagged in ``rows_for``, the bounded head-averaged attention row
+    (:func:`bounded_rows`) of every layer at :func:`query_position`."""
     wanted = list(rows_for) if rows_for is not None else [False] * len(items)
     result = ScanResult([None] * len(items), [None] * len(items))
     modules = attention_modules(model) if any(wanted) else []
@@ -63,7 +71,7 @@ def scan_items(model: nn.Module, items: Sequence[dict], batch_tokens: int, devic
             per_layer = []
             for module, x in zip(modules, inputs):
                 weights = module.attention_weights(x.index_select(0, sel))  # [b, heads, t, t]
-                per_layer.append(weights[batch, :, queries, :].mean(dim=1).double().cpu())
+                per_layer.append(bounded_rows(weights[batch, :, queries, :]).double().cpu())
             stacked = torch.stack(per_layer, dim=1).numpy()  # [b, layers, t]
             for j, b in enumerate(chosen):
                 result.rows[idx[b]] = stacked[j, :, : int(queries[j]) + 1]

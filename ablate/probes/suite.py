@@ -25,6 +25,8 @@ from typing import Callable, Mapping
 import numpy as np
 from torch import nn
 
+from ..checks import positive_int
+
 from . import attention as attention_mod
 from . import retrieval as retrieval_mod
 from .attention import attention_probe
@@ -53,14 +55,10 @@ WINDOW_PROBES = ("outliers", "quantization", "position")
 
 
 def _positive_int(name: str, value, allow_none: bool = False) -> None:
-    if allow_none and value is None:
-        return
-    if not isinstance(value, int) or isinstance(value, bool) or value <= 0:
-        allowed = "a positive integer or null" if allow_none else "a positive integer"
-        raise ValueError(f"probes.{name}={value!r}: must be {allowed}")
+    positive_int(f"probes.{name}", value, allow_none)
 
 
-def resolve_config(probes_cfg: Mapping) -> dict:
+def check_config(probes_cfg: Mapping) -> dict:
     """Defaults merged with ``probes_cfg``; unknown keys and bad values raise one-line errors."""
     unknown = sorted(set(probes_cfg) - set(DEFAULTS))
     if unknown:
@@ -116,7 +114,7 @@ def run_probes(model: nn.Module, corpus, probes_cfg: Mapping, device="cpu") -> t
 
     Returns ``(numbers, images)``: a flat ``name -> float`` dict and ``name -> uint8 [H, W, 3]``.
     """
-    cfg = resolve_config(probes_cfg)
+    cfg = check_config(probes_cfg)
     seq_len = int(getattr(model, "seq_len"))
     bt = cfg["batch_tokens"]
     numbers: dict[str, float] = {}

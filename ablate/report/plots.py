@@ -1,0 +1,240 @@
+"""Figures of a report, all through one matplotlib set-up (the Agg backend, files only).
+The first figure is the paired-difference chart: one bar per comparison on the primary metric,
+whiskers = the 95% t interval of the paired difference."""
+
+from __future__ import annotations
+
+import math
+import re
+from collections import defaultdict
+from pathlib import Path
+
+import numpy as np
+
+from ablate import efficiency
+
+from .table import Report, design_label
+
+LAMBDA_TAG = re.compile(r"^lambda/layer_(\d+)$")
+RETRIEVAL_KEY = re.compile(
+    r"^retrieval/acc[/_]len(?P<length>\d+)[/_]depth(?P<depth>\d+(?:\.\d+)?)(?P<rest>.*)$"
+)
+
+
+def pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def paired_difference_chart(report: Report, path: Path) -> bool:
+    shown = [v for v in report.verdicts if math.isfinite(v.diff)]
+    if not shown:
+        return False
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(max(5.5, 1.4 * len(shown) + 2), 3.6))
+    x = np.arange(len(shown))
+    lows = [v.diff - v.low if math.isfinite(v.low) else 0.0 for v in shown]
+    highs = [v.high - v.diff if math.isfinite(v.high) else 0.0 for v in shown]
+    ax.bar(x, [v.diff for v in shown], 0.6, yerr=[lows, highs], capsize=4, color="tab:blue")
+    ax.axhline(0.0, color="black", lw=0.8)
+    ax.set_xticks(x, [f"{design_label(v.cell, v.reference)}\n(n={v.n_paired})" for v in shown], fontsize=8)
+    ax.set_ylabel(f"paired difference in {report.metric}")
+    ax.set_title(f"{report.metric}: cell minus reference\nwhiskers = 95% t interval", fontsize=9)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True
+
+
+def _aligned(curves: list[tuple[np.ndarray, np.ndarray]]):
+    """Curves interpolated onto the densest run's steps within the range all runs cover."""
+    start = max(c[0][0] for c in curves)
+    stop = min(c[0][-1] for c in curves)
+    grid = max(curves, key=lambda c: len(c[0]))[0]
+    grid = grid[(grid >= start) & (grid <= stop)]
+    if grid.size == 0:
+        return grid, np.empty((len(curves), 0))
+    return grid, np.stack([np.interp(grid, s, v) for s, v in curves])
+
+
+def plot_val_loss(runs: list, path: Path, labels: dict[str, str]) -> list[str]:
+    plt = pyplot()
+    by_cell = defaultdict(list)
+    for run in runs:
+        if run.usable and "loss/val" in run.scalars and run.scalars["loss/val"][0].size:
+            by_cell[run.cell].append(run.scalars["loss/val"])
+    if not by_cell:
+        return []
+    fig, ax = plt.subplots(figsize=(7, 4.2))
+    for cell in sorted(by_cell):
+        steps, stacked = _aligned(by_cell[cell])
+        if steps.size == 0:
+            continue
+        n = len(by_cell[cell])
+        (line,) = ax.plot(
+            steps,
+            stacked.mean(axis=0),
+            marker="o" if steps.size <= 20 else None,
+            markersize=3,
+            label=f"{labels[cell]} ({n} seed{'s' if n != 1 else ''})",
+        )
+        ax.fill_between(steps, stacked.min(axis=0), stacked.max(axis=0), color=line.get_color(), alpha=0.2)
+    ax.set_xlabel("tokens seen")
+    ax.set_ylabel("validation loss (nats)")
+    ax.set_title("validation loss: mean over seeds, band = min to max")
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return sorted(by_cell)
+
+
+def plot_lambda(runs: list, path: Path, labels: dict[str, str]) -> bool:
+    by_cell: dict[str, dict[int, list]] = defaultdict(lambda: defaultdict(list))
+    for run in runs:
+        if not run.usable:
+            continue
+        for tag, series in run.scalars.items():
+            match = LAMBDA_TAG.match(tag)
+            if match and series[0].size:
+                by_cell[run.cell][int(match.group(1))].append(series)
+    if not by_cell:
+        return False
+    plt = pyplot()
+    cells = sorted(by_cell)
+    fig, axes = plt.subplots(1, len(cells), figsize=(5.5 * len(cells), 4), squeeze=False)
+    for ax, cell in zip(axes[0], cells):
+        layers = sorted(by_cell[cell])
+        cmap = plt.get_cmap("viridis")
+        for i, layer in enumerate(layers):
+            steps, stacked = _aligned(by_cell[cell][layer])
+            ax.plot(
+                steps, stacked.mean(axis=0), color=cmap(i / max(1, len(layers) - 1)), label=f"layer {layer}"
+            )
+        ax.set_title(f"lambda per layer: {labels[cell]}", fontsize=9)
+        ax.set_xlabel("tokens seen")
+        ax.set_ylabel("lambda (mean over seeds)")
+        ax.legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True
+
+
+def retrieval_grid(table) -> dict[str, tuple[list[int], list[float], np.ndarray]]:
+    """cell -> (lengths, depths, accuracy[depth, length]), mean over seeds.
+
+    Uses ``retrieval/acc_len<L>_depth<D>`` where present; otherwise averages the keys that carry
+    further axes (``..._depth<D>_n<N>_r<R>``) over those axes.
+    """
+    grids = {}
+    for cell, per_metric in table.items():
+        exact: dict[tuple[int, float], list] = defaultdict(list)
+        finer: dict[tuple[int, float], list] = defaultdict(list)
+        for metric, seeds in per_metric.items():
+            match = RETRIEVAL_KEY.match(metric)
+            if match:
+                key = (int(match.group("length")), float(match.group("depth")))
+                (finer if match.group("rest") else exact)[key].extend(seeds.values())
+        # A key with no further axes is already the mean over them: prefer it to re-averaging.
+        cells_acc = {key: exact.get(key) or finer[key] for key in set(exact) | set(finer)}
+        if cells_acc:
+            lengths = sorted({k[0] for k in cells_acc})
+            depths = sorted({k[1] for k in cells_acc})
+            acc = np.full((len(depths), len(lengths)), np.nan)
+            for (length, depth), values in cells_acc.items():
+                acc[depths.index(depth), lengths.index(length)] = float(np.mean(values))
+            grids[cell] = (lengths, depths, acc)
+    return grids
+
+
+def plot_retrieval(grids, path: Path, labels: dict[str, str]) -> None:
+    plt = pyplot()
+    cells = sorted(grids)
+    fig, axes = plt.subplots(
+        1, len(cells), figsize=(4.5 * len(cells) + 1, 3.8), squeeze=False, layout="constrained"
+    )
+    image = None
+    for ax, cell in zip(axes[0], cells):
+        lengths, depths, acc = grids[cell]
+        image = ax.imshow(acc, vmin=0.0, vmax=1.0, cmap="magma", origin="lower", aspect="auto")
+        ax.set_xticks(range(len(lengths)), [str(v) for v in lengths])
+        ax.set_yticks(range(len(depths)), [f"{v:g}" for v in depths])
+        ax.set_xlabel("context length")
+        ax.set_ylabel("depth")
+        ax.set_title(labels[cell], fontsize=9)
+        for (i, j), value in np.ndenumerate(acc):
+            if math.isfinite(value):
+                ax.text(
+                    j,
+                    i,
+                    f"{value:.2f}",
+                    ha="center",
+                    va="center",
+                    fontsize=7,
+                    color="black" if value > 0.6 else "white",
+                )
+    fig.colorbar(image, ax=axes[0].tolist(), label="retrieval accuracy")
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+def short_labels(cells: list[str]) -> tuple[dict[str, str], list[str]]:
+    """Plot labels without the ``key=value`` parts every cell shares; also returns those parts."""
+    parts = {c: c.split(",") for c in cells}
+    shared = [p for p in parts[cells[0]] if all(p in parts[c] for c in cells)] if len(cells) > 1 else []
+    labels = {c: ",".join(p for p in parts[c] if p not in shared) or c for c in cells}
+    if len(set(labels.values())) < len(cells):
+        return {c: c for c in cells}, []
+    return labels, shared
+
+
+def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: list) -> None:
+    """Left: points and fitted curves per attention choice. Right: ratio R(x) with its band."""
+    plt = pyplot()
+    fig, (left, right) = plt.subplots(1, 2, figsize=(11, 4.2))
+    cycle = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    colors = {name: cycle[i % len(cycle)] for i, name in enumerate(sorted(cells_by_choice))}
+    label = efficiency.AXIS_LABELS[axis]
+    for name, cells in sorted(cells_by_choice.items()):
+        color = colors[name]
+        xs, ys = efficiency._stack(cells)
+        left.scatter(xs, ys, s=14, color=color, alpha=0.7)
+        if name in fits:
+            curve = fits[name]
+            grid = np.geomspace(xs.min(), xs.max(), 100)
+            left.plot(grid, curve.loss(grid), color=color, label=f"{name} ({curve.kind})")
+        else:
+            left.plot([], [], color=color, label=f"{name} (no fit)")
+    left.set_xscale("log")
+    left.set_xlabel(label)
+    left.set_ylabel("final validation loss")
+    left.set_title("loss across the sweep")
+    left.legend(fontsize=8)
+    for comp in [c for c in comparisons if c.determined]:
+        color = colors.get(comp.candidate, "black")
+        right.plot(
+            comp.grid_x, 100 * comp.grid_ratio, color=color, label=f"{comp.candidate} vs {comp.baseline}"
+        )
+        right.fill_between(comp.grid_x, 100 * comp.grid_low, 100 * comp.grid_high, color=color, alpha=0.2)
+        right.errorbar(
+            [comp.x_mid],
+            [100 * comp.ratio],
+            color=color,
+            fmt="o",
+            yerr=[[100 * (comp.ratio - comp.ci_low)], [100 * (comp.ci_high - comp.ratio)]],
+        )
+    right.axhline(100, color="grey", lw=0.8, ls="--")
+    right.set_xscale("log")
+    right.set_xlabel(label)
+    right.set_ylabel(f"% of baseline's {efficiency.AXIS_NOUNS[axis]} for equal loss")
+    right.set_title("size ratio R (band: bootstrap 95%)")
+    if comparisons:
+        right.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)

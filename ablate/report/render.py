@@ -1,0 +1,378 @@
+"""Pure functions of a :class:`~ablate.report.table.Report`: Markdown, CSV rows, console text."""
+
+from __future__ import annotations
+
+import math
+import re
+
+from .table import LOSS, Report, Verdict, design_label
+
+CSV_COLUMNS = [
+    "cell",
+    "metric",
+    "kind",
+    "n",
+    "mean",
+    "ci_low",
+    "ci_high",
+    "reference",
+    "n_paired",
+    "diff_to_baseline",
+    "diff_ci_low",
+    "diff_ci_high",
+    "p_value",
+    "p_holm",
+    "resolution",
+    "seeds_needed_low",
+    "seeds_needed_high",
+    "note",
+]
+HEADLINE_PER_FAMILY = 4
+
+
+def num(value, digits: int = 4) -> str:
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return "-"
+    if isinstance(value, int) or (isinstance(value, float) and value.is_integer() and abs(value) < 1e10):
+        return f"{int(value):,}"
+    return f"{value:.{digits}g}" if abs(value) >= 1e4 or abs(value) < 1e-3 else f"{value:.{digits}f}"
+
+
+def signed(value: float) -> str:
+    return f"{value:+.3g}"
+
+
+def unit(metric: str) -> str:
+    return " nats" if "loss" in metric else ""
+
+
+def interval(low: float, high: float) -> str:
+    return f"[{num(low)}, {num(high)}]" if math.isfinite(low) else "-"
+
+
+def resolution_clause(v: Verdict) -> str:
+    if v.resolution is None or not math.isfinite(v.low):
+        return ""
+    half = (v.high - v.low) / 2
+    word = "resolved" if half <= v.resolution else "not yet resolved"
+    return f" (half-width {half:.3g} against the resolution {v.resolution:g}: {word})"
+
+
+def verdict_sentence(v: Verdict) -> str:
+    who, ref, u = design_label(v.cell, v.reference), design_label(v.reference, v.cell), unit(v.metric)
+    verb = "lowers" if v.diff < 0 else "raises"
+    tail = f"; {v.reduced}" if v.reduced else ""
+    if v.status == "excludes zero":
+        text = (
+            f"{who} {verb} {v.metric} by {abs(v.diff):.3g}{u} against {ref} (95% CI {signed(v.low)} to "
+            f"{signed(v.high)}, {v.n_paired} paired seeds): the interval excludes zero"
+        )
+    elif v.status == "undecided":
+        text = (
+            f"{who} against {ref} on {v.metric}: undecided: the interval spans {signed(v.low)} to "
+            f"{signed(v.high)}{u} ({v.n_paired} paired seeds); it rules out lowering it by more than "
+            f"{abs(v.low):.3g} or raising it by more than {abs(v.high):.3g}"
+        )
+    elif v.status == "no spread":
+        text = (
+            f"{who} {verb} {v.metric} by {abs(v.diff):.3g}{u} against {ref} in every one of {v.n_paired} "
+            f"paired seeds: no spread across {v.n_paired} seeds, so no interval"
+        )
+    elif v.status == "one pair":
+        text = f"{who} against {ref} on {v.metric}: {signed(v.diff)}{u} on 1 paired seed: no interval"
+    elif v.status == "censored":
+        text = f"{who} against {ref} on {v.metric}: {v.censored}: no interval"
+    else:
+        text = f"{who} against {ref} on {v.metric}: no paired seeds"
+    return text + resolution_clause(v) + tail
+
+
+def headline(report: Report) -> list[str]:
+    return [verdict_sentence(v) for v in report.verdicts] or [
+        f"only the baseline {report.baseline}: nothing to compare"
+    ]
+
+
+def table(header: list[str], rows: list[list]) -> list[str]:
+    lines = ["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"]
+    return lines + ["| " + " | ".join(str(c).replace("|", "/") for c in row) + " |" for row in rows]
+
+
+def family_of(metric: str) -> str:
+    return "loss" if metric == LOSS else metric.split("/", 1)[0]
+
+
+def headline_metrics(metrics: list[str]) -> list[str]:
+    plain = [m for m in metrics if not re.search(r"\d", m)] or metrics
+    return sorted(plain, key=lambda m: ("acc" not in m.rsplit("/", 1)[-1], m))[:HEADLINE_PER_FAMILY]
+
+
+def context_text(report: Report, cell: str, family: str) -> str:
+    found = [
+        c
+        for c in report.context
+        if c.cell == cell
+        and c.key.startswith(family + "/")
+        and (c.key.endswith("copy_level") or c.key.endswith("_reached"))
+    ]
+    parts = []
+    for c in found:
+        if c.key.endswith("_reached"):
+            parts.append(f"{c.key.rsplit('/', 1)[-1]} in {sum(v > 0.5 for v in c.values)} of {len(c.values)}")
+        else:
+            parts.append(
+                f"copy level {num(c.values[0])}" if len(set(c.values)) == 1 else f"copy level {c.values}"
+            )
+    return "; ".join(parts) or "-"
+
+
+def mean_text(r) -> str:
+    if r.censored or not r.n:
+        return r.censored or "no completed seeds"
+    if math.isfinite(r.ci_low) and r.ci_low == r.ci_high:
+        return f"{num(r.mean)} (no spread across {r.n} seeds)"
+    return f"{num(r.mean)} {interval(r.ci_low, r.ci_high)}"
+
+
+def diff_text(r) -> str:
+    if r.censored or not math.isfinite(r.diff):
+        return "-"
+    if r.no_spread:
+        return f"{num(r.diff)} (no spread across {r.n_paired} seeds)"
+    return f"{num(r.diff)} {interval(r.diff_low, r.diff_high)}"
+
+
+def row_cells(r) -> list[str]:
+    mean = mean_text(r)
+    if r.is_reference:
+        return [f"`{r.cell}` (reference)", mean, "-", "-"]
+    return [f"`{r.cell}`", mean, diff_text(r), str(r.n_paired) + (" (reduced)" if r.reduced else "")]
+
+
+def family_tables(report: Report) -> list[str]:
+    metrics = list(dict.fromkeys(r.metric for r in report.rows))
+    out = []
+    for family in dict.fromkeys(family_of(m) for m in metrics):
+        chosen = headline_metrics([m for m in metrics if family_of(m) == family])
+        body = [
+            [f"`{r.metric}`", *row_cells(r), context_text(report, r.cell, family)]
+            for m in chosen
+            for r in report.rows
+            if r.metric == m
+        ]
+        out += [f"### {family}", ""]
+        out += table(["metric", "cell", "mean [95% CI]", "paired diff [95% CI]", "paired n", "context"], body)
+        out.append("")
+    return out
+
+
+def seeds_text(r) -> str:
+    if r.seeds_needed:
+        return f"{r.seeds_needed[0]}-{r.seeds_needed[1]} seeds for +/-{r.resolution:g}{unit(r.metric)}"
+    return r.seeds_note or "-"
+
+
+def rounds_line(report: Report) -> str:
+    seeds = report.seeds
+    span = (
+        f"seeds {seeds[0]}-{seeds[-1]}"
+        if seeds and seeds == list(range(seeds[0], seeds[-1] + 1))
+        else "seeds " + ", ".join(map(str, seeds))
+    )
+    return f"{report.rounds} round{'s' if report.rounds != 1 else ''} ran ({span})"
+
+
+def fairness_lines(report: Report) -> list[str]:
+    body = [
+        [
+            f"`{f.cell}`",
+            num(f.values["params"]),
+            f"{f.ratios['params']:.3f}",
+            num(f.values["flops_per_token"]),
+            f"{f.ratios['flops_per_token']:.3f}",
+            num(f.values["tokens"]),
+            f.budget_match or "-",
+            f.flag or "-",
+        ]
+        for f in report.fairness
+    ]
+    return table(
+        [
+            "cell",
+            "params",
+            "params ratio",
+            "FLOPs/token",
+            "FLOPs ratio",
+            "tokens",
+            "budget matched by",
+            "flag",
+        ],
+        body,
+    )
+
+
+def efficiency_lines(report: Report) -> list[str]:
+    out = [f"- **{c.sentence()}.**" for c in report.efficiency]
+    out += [
+        f"  Compared at x = {c.x_mid:.4g}; the baseline needs {c.needed_x:.4g}; {c.resamples} joint-seed "
+        f"bootstrap draws, {c.failed_resamples} failed a check."
+        for c in report.efficiency
+        if c.determined
+    ]
+    return out + [f"- {n}" for n in report.efficiency_notes]
+
+
+def appendix(report: Report) -> list[str]:
+    out = [
+        f"- `{t.cell}` vs `{t.reference}`: {t.below} of {t.tested} below 0.05; about {0.05 * t.tested:.1f} "
+        f"expected by chance; {t.below_holm} below 0.05 after Holm's adjustment."
+        for t in report.tests
+    ]
+    body = [
+        [f"`{r.metric}`", *row_cells(r), num(r.p_value), num(r.p_holm), seeds_text(r)] for r in report.rows
+    ]
+    return (
+        out
+        + [""]
+        + table(
+            [
+                "metric",
+                "cell",
+                "mean [95% CI]",
+                "paired diff [95% CI]",
+                "paired n",
+                "p",
+                "p (Holm)",
+                "seeds needed",
+            ],
+            body,
+        )
+    )
+
+
+def markdown(report: Report, plots: list[tuple[str, str]]) -> str:
+    md = [
+        f"# headtohead report: {report.name}",
+        "",
+        f"**Verdict on `{report.metric}`** (baseline `{report.baseline}`):",
+        "",
+    ]
+    md += [f"- {line}." for line in headline(report)] + [""]
+    md += [f"![{title}](plots/{name})" for title, name in plots[:1]] + ["", "## Probe families", ""]
+    md += family_tables(report)
+    md += ["## Cells and seeds", "", f"- {rounds_line(report)}; recipe {report.recipe or 'not stated'}."]
+    md += [
+        f"- `{c.name}`: {c.completed}/{c.launched} completed ({c.diverged} diverged)" for c in report.cells
+    ]
+    md += [
+        f"- seeds needed, `{r.cell}` on `{r.metric}`: {seeds_text(r)}"
+        for r in report.rows
+        if r.metric == report.metric and not r.is_reference
+    ]
+    md += ["", "## Fairness: size and compute per cell", ""] + fairness_lines(report)
+    if report.sweep:
+        md += ["", "## Efficiency across the sweep", ""] + efficiency_lines(report)
+    md += ["", "## Runs left out of the averages", ""]
+    md += (
+        table(
+            ["run folder", "status", "where", "reason"],
+            [[f"`{x.folder}`", x.status, x.where, x.reason] for x in report.left_out],
+        )
+        if report.left_out
+        else ["None: every run completed."]
+    )
+    md += ["", "## Plots", ""] + [f"- {title}: ![{title}](plots/{name})" for title, name in plots]
+    md += ["", "## Appendix: every metric (full table also in summary.csv)", ""] + appendix(report)
+    return "\n".join(md) + "\n"
+
+
+def csv_value(v) -> str:
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return ""
+    return repr(v) if isinstance(v, float) else str(v)
+
+
+def csv_rows(report: Report) -> list[list[str]]:
+    rows = []
+    for r in report.rows:
+        ref = r.is_reference
+        low, high = r.seeds_needed or (None, None)
+        rows.append(
+            [
+                csv_value(x)
+                for x in (
+                    r.cell,
+                    r.metric,
+                    "metric",
+                    r.n,
+                    r.mean,
+                    r.ci_low,
+                    r.ci_high,
+                    r.reference,
+                    None if ref else r.n_paired,
+                    None if ref else r.diff,
+                    None if ref else r.diff_low,
+                    None if ref else r.diff_high,
+                    None if ref else r.p_value,
+                    None if ref else r.p_holm,
+                    r.resolution,
+                    low,
+                    high,
+                    "; ".join(x for x in (r.censored, r.reduced, "" if ref else r.seeds_note) if x),
+                )
+            ]
+        )
+    for c in report.context:
+        rows.append(
+            [c.cell, c.key, "context", str(len(c.values))]
+            + [""] * 13
+            + ["values: " + ", ".join(num(v) for v in sorted(set(c.values)))]
+        )
+    for c in report.efficiency:
+        rows.append(
+            [
+                csv_value(x)
+                for x in (
+                    c.candidate,
+                    f"{c.axis}_ratio",
+                    "ratio",
+                    c.n_seeds,
+                    c.ratio,
+                    c.ci_low,
+                    c.ci_high,
+                    c.baseline,
+                )
+            ]
+            + [""] * 9
+            + [c.sentence()]
+        )
+    return rows
+
+
+def console(report: Report) -> str:
+    lines = [f"{report.name}: {line}" for line in headline(report)]
+    header = ["cell", "completed", report.metric, "95% CI", "paired n", "diff", "95% CI of diff"]
+    body = [
+        [
+            r.cell + (" *" if r.cell == report.baseline else ""),
+            next(f"{c.completed}/{c.launched}" for c in report.cells if c.name == r.cell),
+            num(r.mean),
+            interval(r.ci_low, r.ci_high),
+            "-" if r.is_reference else str(r.n_paired),
+            "-" if r.is_reference else num(r.diff),
+            "-" if r.is_reference else interval(r.diff_low, r.diff_high),
+        ]
+        for r in report.rows
+        if r.metric == report.metric
+    ]
+    widths = [max(len(h), *(len(b[i]) for b in body)) for i, h in enumerate(header)]
+    lines += ["  ".join(h.ljust(w) for h, w in zip(header, widths))]
+    lines += ["  ".join(c.ljust(w) for c, w in zip(b, widths)) for b in body]
+    lines.append(f"* baseline; {rounds_line(report)}")
+    if report.left_out:
+        lines.append(
+            f"{len(report.left_out)} run(s) left out of the averages "
+            "(failed, diverged or unfinished): see report.md"
+        )
+    lines += [c.sentence() for c in report.efficiency]
+    return "\n".join(lines)

@@ -1,0 +1,402 @@
+"""Recall drills: symbolic, answer-supervised sequences generated per training step.
+
+Three kinds, each with its own vocabulary (no tokenizer) and a fixed sequence length:
+
+- ``recall``: associative recall, many-query form (Ba et al., 2016): ``n_pairs`` pairs ``k v``
+  (distinct keys, distinct values), a separator, then ``n_queries`` queries ``k v`` about context
+  keys; the query value is the answer.
+- ``noisy_recall``: the same with two-token keys ``p s`` (groups of ``lookalikes + 1`` keys share
+  their first token ``p``), ``filler_len`` filler tokens after every pair (so before the queries
+  too), and queries ``p s v``.
+- ``induction``: induction copy (Olsson et al., 2022): a window of random symbols in which a span
+  of ``span_len`` distinct symbols (that occur nowhere else) appears at a random offset and again
+  later; every continuation token of the repeat (its tokens 2..span_len) is an answer.
+
+A training batch for step ``s`` is a pure function of ``(seed, s)``: ``default_rng([seed, s])``.
+The held-out set draws from ``SeedSequence(seed, spawn_key=(1,))``, a stream that no
+``[seed, step]`` entropy reproduces (its assembled entropy has five words, training's two).
+
+Copy level = exact accuracy of the best guesser that does not read the query:
+
+- query sampling ``replacement``: the answer is uniform over the n distinct context values, so 1/n;
+- ``permutation`` (queries ask distinct keys): the guesser eliminates values already asked, so query
+  j (from 0) scores 1/(n - j); mean over the q queries: (1/q) sum_{j<q} 1/(n - j) (= H_n / n for q = n);
+- ``cycles`` (back-to-back permutations of the n keys): query j scores 1/(n - (j mod n)); mean over q;
+- induction: a guesser that knows which symbols form the span and which the repeat has already
+  shown, but not their order, scores 1/(m - j) on continuation j = 1..m-1: H_{m-1} / (m - 1).
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+import numpy as np
+
+DRILL_KINDS = ("recall", "noisy_recall", "induction")
+QUERY_SAMPLINGS = ("permutation", "replacement", "cycles")
+LOSS_ON = ("answers", "all")
+HELD_OUT_SPAWN_KEY = 1
+
+
+@dataclass
+class DrillConfig:
+    kind: str
+    seed: int = 0
+    loss_on: str = "answers"  # "answers": loss on answer positions only; "all": every target
+    n_pairs: int = 8  # recall, noisy_recall: key/value pairs in the context
+    n_keys: int = 64  # recall: key symbols; noisy_recall: first-token symbols
+    n_values: int = 64  # recall, noisy_recall: value symbols
+    n_queries: int = 8  # recall, noisy_recall: queries after the separator
+    query_sampling: str = "permutation"  # permutation | replacement | cycles
+    filler_len: int = 2  # noisy_recall: filler tokens after every pair
+    n_filler: int = 16  # noisy_recall: filler symbols
+    lookalikes: int = 1  # noisy_recall: other context keys sharing each key's first token
+    n_suffixes: int = 16  # noisy_recall: second-token symbols
+    span_len: int = 8  # induction: tokens in the repeated span
+    window: int = 32  # induction: tokens per sequence (T + 1)
+    n_symbols: int = 16  # induction: vocabulary
+
+    def check(self) -> None:
+        """Raises ``ValueError`` with one line naming ``data.<key>`` and what is allowed."""
+        _check_choice("kind", self.kind, DRILL_KINDS)
+        _check_choice("loss_on", self.loss_on, LOSS_ON)
+        _check_choice("query_sampling", self.query_sampling, QUERY_SAMPLINGS)
+        _check_int("seed", self.seed, 0)
+        for name in (
+            "n_pairs",
+            "n_keys",
+            "n_values",
+            "n_queries",
+            "n_filler",
+            "n_suffixes",
+            "span_len",
+            "window",
+            "n_symbols",
+        ):
+            _check_int(name, getattr(self, name), 1)
+        _check_int("filler_len", self.filler_len, 0)
+        _check_int("lookalikes", self.lookalikes, 0)
+        if self.kind in ("recall", "noisy_recall"):
+            self._check_recall()
+        if self.kind == "noisy_recall":
+            self._check_noisy()
+        if self.kind == "induction":
+            self._check_induction()
+
+    def _check_recall(self) -> None:
+        n = self.n_pairs
+        _check_int("n_values", self.n_values, n, f"data.n_pairs={n} (values are distinct)")
+        if self.kind == "recall":
+            _check_int("n_keys", self.n_keys, n, f"data.n_pairs={n} (keys are distinct)")
+        if self.query_sampling == "permutation" and self.n_queries > n:
+            raise ValueError(
+                f"data.n_queries={self.n_queries}: must be <= data.n_pairs={n} under "
+                f"query_sampling=permutation; allowed: 1..{n} (or query_sampling=cycles)"
+            )
+
+    def _check_noisy(self) -> None:
+        g = self.lookalikes + 1
+        n = self.n_pairs
+        if n % g:
+            raise ValueError(
+                f"data.lookalikes={self.lookalikes}: lookalikes + 1 must divide data.n_pairs="
+                f"{self.n_pairs}; allowed: {[d - 1 for d in range(1, n + 1) if n % d == 0]}"
+            )
+        _check_int(
+            "n_keys",
+            self.n_keys,
+            self.n_pairs // g,
+            f"the {self.n_pairs // g} key groups (distinct first tokens)",
+        )
+        _check_int(
+            "n_suffixes", self.n_suffixes, g, f"lookalikes + 1 = {g} (distinct second tokens in a group)"
+        )
+
+    def _check_induction(self) -> None:
+        m = self.span_len
+        _check_int("span_len", m, 2, "2 (one continuation token at least)")
+        _check_int("window", self.window, 2 * m, f"2 * data.span_len = {2 * m} (two copies fit)")
+        _check_int("n_symbols", self.n_symbols, m + 1, f"data.span_len + 1 = {m + 1} (noise needs a symbol)")
+
+
+def _check_choice(name: str, value, allowed: tuple[str, ...]) -> None:
+    if value not in allowed:
+        raise ValueError(
+            f"data.{name}={value!r}: must be one of the named choices; allowed: {', '.join(allowed)}"
+        )
+
+
+def _check_int(name: str, value, low: int, why: str | None = None) -> None:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
+        reason = f"must be an integer >= {low}" + (f", at least {why}" if why else "")
+        raise ValueError(f"data.{name}={value!r}: {reason}; allowed: {low}, {low + 1}, ...")
+
+
+# ----------------------------------------------------------------------------- sampling helpers
+
+
+def distinct(rng: np.random.Generator, shape: tuple[int, ...], pool: int, k: int) -> np.ndarray:
+    """``k`` distinct ids from ``range(pool)`` per row of ``shape``: ``[*shape, k]`` (random order)."""
+    return rng.random((*shape, pool)).argsort(axis=-1)[..., :k]
+
+
+def query_order(rng: np.random.Generator, batch: int, n: int, q: int, sampling: str) -> np.ndarray:
+    """Indices ``[batch, q]`` of the context pairs the queries ask about."""
+    if sampling == "replacement":
+        return rng.integers(0, n, size=(batch, q))
+    rounds = 1 if sampling == "permutation" else -(-q // n)
+    return rng.random((batch, rounds, n)).argsort(axis=-1).reshape(batch, rounds * n)[:, :q]
+
+
+def elimination_level(n: int, q: int, sampling: str) -> float:
+    """Copy level of the query-blind guesser (module docstring)."""
+    if sampling == "replacement":
+        return 1.0 / n
+    return float(np.mean([1.0 / (n - (j % n)) for j in range(q)]))
+
+
+def excluding(
+    rng: np.random.Generator, shape: tuple[int, int], pool: int, excluded: np.ndarray
+) -> np.ndarray:
+    """Uniform ids from ``range(pool)`` minus each row's ``excluded`` ids: draw r in
+    [0, pool - k) and step it past the excluded ids in ascending order."""
+    x = rng.integers(0, pool - excluded.shape[1], size=shape)
+    for col in np.sort(excluded, axis=1).T:
+        x += x >= col[:, None]
+    return x
+
+
+# ----------------------------------------------------------------------------- the three kinds
+
+
+class _Recall:
+    """``k1 v1 ... kn vn | k v k v ...``: keys ``[0, n_keys)``, values after them, then the separator."""
+
+    def __init__(self, cfg: DrillConfig):
+        self.cfg = cfg
+        self.n, self.q = cfg.n_pairs, cfg.n_queries
+        self.value0 = cfg.n_keys
+        self.sep = cfg.n_keys + cfg.n_values
+        self.vocab_size = self.sep + 1
+        self.context = 2 * self.n
+        self.length = self.context + 1 + 2 * self.q
+        self.copy_level = elimination_level(self.n, self.q, cfg.query_sampling)
+        self.targets = self.context + 1 + 2 * np.arange(self.q)  # target t: tokens[t + 1] is a query value
+
+    def generate(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, dict]:
+        keys = distinct(rng, (batch,), self.cfg.n_keys, self.n)
+        values = self.value0 + distinct(rng, (batch,), self.cfg.n_values, self.n)
+        order = query_order(rng, batch, self.n, self.q, self.cfg.query_sampling)
+        tokens = np.empty((batch, self.length), dtype=np.int64)
+        tokens[:, 0 : self.context : 2] = keys
+        tokens[:, 1 : self.context : 2] = values
+        tokens[:, self.context] = self.sep
+        tokens[:, self.context + 1 :: 2] = np.take_along_axis(keys, order, axis=1)
+        tokens[:, self.context + 2 :: 2] = np.take_along_axis(values, order, axis=1)
+        return tokens, np.broadcast_to(self.targets, (batch, self.q)), {"order": order}
+
+    def spans(self, meta: dict, b: int, a: int) -> dict:
+        j = int(meta["order"][b, a])
+        return {"pair": [2 * j, 2 * j + 2], "lookalike": [], "filler": []}
+
+    def name(self, tok: int) -> str:
+        if tok == self.sep:
+            return "|"
+        return f"k{tok}" if tok < self.value0 else f"v{tok - self.value0}"
+
+
+class _NoisyRecall:
+    """``p s v ~ ~ ... | p s v ...``: first tokens, second tokens, values, filler, separator."""
+
+    def __init__(self, cfg: DrillConfig):
+        self.cfg = cfg
+        self.n, self.q, self.f = cfg.n_pairs, cfg.n_queries, cfg.filler_len
+        self.g = cfg.lookalikes + 1
+        self.suffix0 = cfg.n_keys
+        self.value0 = self.suffix0 + cfg.n_suffixes
+        self.filler0 = self.value0 + cfg.n_values
+        self.sep = self.filler0 + cfg.n_filler
+        self.vocab_size = self.sep + 1
+        self.block = 3 + self.f
+        self.context = self.n * self.block
+        self.length = self.context + 1 + 3 * self.q
+        self.copy_level = elimination_level(self.n, self.q, cfg.query_sampling)
+        self.targets = self.context + 2 + 3 * np.arange(self.q)
+
+    def generate(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, dict]:
+        n, g = self.n, self.g
+        groups = n // g
+        first = np.repeat(distinct(rng, (batch,), self.cfg.n_keys, groups), g, axis=1)
+        second = self.suffix0 + distinct(rng, (batch, groups), self.cfg.n_suffixes, g).reshape(batch, n)
+        group = np.repeat(np.arange(groups)[None, :], batch, axis=0).repeat(g, axis=1)
+        shuffle = rng.random((batch, n)).argsort(axis=1)  # look-alikes need not sit side by side
+        first, second, group = (np.take_along_axis(a, shuffle, axis=1) for a in (first, second, group))
+        values = self.value0 + distinct(rng, (batch,), self.cfg.n_values, n)
+        order = query_order(rng, batch, n, self.q, self.cfg.query_sampling)
+        tokens = np.empty((batch, self.length), dtype=np.int64)
+        blocks = tokens[:, : self.context].reshape(batch, n, self.block)
+        blocks[:, :, 0], blocks[:, :, 1], blocks[:, :, 2] = first, second, values
+        blocks[:, :, 3:] = self.filler0 + rng.integers(0, self.cfg.n_filler, size=(batch, n, self.f))
+        tokens[:, self.context] = self.sep
+        for k, part in enumerate((first, second, values)):
+            tokens[:, self.context + 1 + k :: 3] = np.take_along_axis(part, order, axis=1)
+        return tokens, np.broadcast_to(self.targets, (batch, self.q)), {"order": order, "group": group}
+
+    def spans(self, meta: dict, b: int, a: int) -> dict:
+        j = int(meta["order"][b, a])
+        same = np.flatnonzero(meta["group"][b] == meta["group"][b, j])
+        filler = [[i * self.block + 3, (i + 1) * self.block] for i in range(self.n)] if self.f else []
+        return {"pair": self._pair(j), "lookalike": [self._pair(i) for i in same if i != j], "filler": filler}
+
+    def _pair(self, i: int) -> list[int]:
+        return [int(i) * self.block, int(i) * self.block + 3]
+
+    def name(self, tok: int) -> str:
+        if tok == self.sep:
+            return "|"
+        for start, label in ((self.filler0, "~"), (self.value0, "v"), (self.suffix0, "s"), (0, "k")):
+            if tok >= start:
+                return f"{label}{tok - start}"
+        raise AssertionError(tok)
+
+
+class _Induction:
+    """A window of symbols with span S at offset a and again at offset b >= a + m."""
+
+    def __init__(self, cfg: DrillConfig):
+        self.cfg = cfg
+        self.m, self.length, self.vocab_size = cfg.span_len, cfg.window, cfg.n_symbols
+        self.copy_level = float(np.mean([1.0 / (self.m - j) for j in range(1, self.m)]))
+
+    def generate(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, dict]:
+        m = self.m
+        span = distinct(rng, (batch,), self.vocab_size, m)
+        tokens = excluding(rng, (batch, self.length), self.vocab_size, span)
+        u = np.sort(rng.integers(0, self.length - 2 * m + 1, size=(batch, 2)), axis=1)
+        first, repeat = u[:, :1], u[:, 1:] + m  # two sorted uniform draws -> offsets a, b
+        rows = np.arange(batch)[:, None]
+        cols = np.arange(m)[None, :]
+        tokens[rows, first + cols] = span
+        tokens[rows, repeat + cols] = span
+        targets = repeat + cols[:, :-1]  # target b + j - 1 predicts tokens[b + j], j = 1..m-1
+        return tokens, targets, {"first": first[:, 0], "repeat": repeat[:, 0]}
+
+    def spans(self, meta: dict, b: int, a: int) -> dict:
+        first, repeat, m = int(meta["first"][b]), int(meta["repeat"][b]), self.m
+        noise = [[s, e] for s, e in ((0, first), (first + m, repeat), (repeat + m, self.length)) if e > s]
+        return {"pair": [first + a, first + a + 2], "lookalike": [], "filler": noise}
+
+    def name(self, tok: int) -> str:
+        return f"t{tok}"
+
+
+_KINDS = {"recall": _Recall, "noisy_recall": _NoisyRecall, "induction": _Induction}
+
+
+class Drill:
+    """One drill: ``batch(step, batch_size)`` for training, ``held_out(n)`` / ``items(n)`` for
+    evaluation, ``vocab_size``, ``length`` (T + 1) and ``copy_level``."""
+
+    def __init__(self, cfg: DrillConfig):
+        if not isinstance(cfg, DrillConfig):
+            raise TypeError(f"Drill: expected a DrillConfig, got {type(cfg).__name__} (use Drill.from_dict)")
+        cfg.check()
+        self.cfg = cfg
+        self._kind = _KINDS[cfg.kind](cfg)
+        self.vocab_size: int = int(self._kind.vocab_size)
+        self.length: int = int(self._kind.length)
+        self.copy_level: float = float(self._kind.copy_level)
+        self._held_out: dict[int, tuple[np.ndarray, np.ndarray, dict]] = {}
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "Drill":
+        known = {f.name for f in fields(DrillConfig)}
+        unknown = sorted(set(d) - known)
+        if unknown:
+            raise ValueError(f"data.{unknown[0]}: unknown drill key; allowed: {', '.join(sorted(known))}")
+        if "kind" not in d:
+            raise ValueError(f"data.kind: missing; allowed: {', '.join(DRILL_KINDS)}")
+        return cls(DrillConfig(**dict(d)))
+
+    def config(self) -> dict[str, Any]:
+        return asdict(self.cfg)
+
+    def _mask(self, targets: np.ndarray, loss_on: str) -> np.ndarray:
+        mask = np.zeros((targets.shape[0], self.length - 1), dtype=bool)
+        if loss_on == "all":
+            mask[:] = True
+        else:
+            np.put_along_axis(mask, targets, True, axis=1)
+        return mask
+
+    def batch(self, step: int, batch_size: int) -> tuple[np.ndarray, np.ndarray]:
+        """int64 tokens ``[B, T + 1]`` and bool mask ``[B, T]`` over target positions (tokens[:, 1:])."""
+        _check_count("step", step, 0)
+        _check_count("batch_size", batch_size, 1)
+        tokens, targets, _ = self._kind.generate(
+            np.random.default_rng([self.cfg.seed, int(step)]), int(batch_size)
+        )
+        return tokens, self._mask(targets, self.cfg.loss_on)
+
+    def _held(self, n: int) -> tuple[np.ndarray, np.ndarray, dict]:
+        _check_count("n", n, 1)
+        if n not in self._held_out:
+            seq = np.random.SeedSequence(self.cfg.seed, spawn_key=(HELD_OUT_SPAWN_KEY,))
+            self._held_out[n] = self._kind.generate(np.random.default_rng(seq), int(n))
+        return self._held_out[n]
+
+    def held_out(self, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """A fixed evaluation set; the mask is always the answer positions."""
+        tokens, targets, _ = self._held(n)
+        return tokens.copy(), self._mask(targets, "answers")
+
+    def items(self, n: int) -> list[dict]:
+        """The held-out sequences as probe items (see the module docstring of ablate.probes.drill)."""
+        tokens, targets, meta = self._held(n)
+        out = []
+        for b in range(n):
+            t = [int(x) for x in targets[b]]
+            out.append(
+                {
+                    "tokens": tokens[b].tolist(),
+                    "answer_positions": t,
+                    "answer_spans": [[p + 1, p + 2] for p in t],
+                    "spans": [self._kind.spans(meta, b, a) for a in range(len(t))],
+                }
+            )
+        return out
+
+    def describe(self, tokens) -> str:
+        row = np.asarray(tokens)
+        if row.ndim != 1 or len(row) != self.length:
+            raise ValueError(
+                f"describe: tokens must be one sequence of {self.length} ids, got shape {row.shape}"
+            )
+        return " ".join(self._kind.name(int(t)) for t in row)
+
+
+def _check_count(name: str, value, low: int) -> None:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
+        raise ValueError(f"{name}={value!r}: must be an integer >= {low}")
+
+
+def accuracy(predictions: np.ndarray, tokens: np.ndarray, mask: np.ndarray) -> float:
+    """Share of masked target positions where ``predictions[b, t] == tokens[b, t + 1]``.
+
+    ``predictions``: argmax at every input position ``[B, T]``; ``tokens``: ``[B, T + 1]``;
+    ``mask``: bool ``[B, T]``.
+    """
+    predictions, tokens, mask = np.asarray(predictions), np.asarray(tokens), np.asarray(mask, dtype=bool)
+    if (
+        tokens.ndim != 2
+        or predictions.shape != (tokens.shape[0], tokens.shape[1] - 1)
+        or mask.shape != predictions.shape
+    ):
+        raise ValueError(
+            f"accuracy: predictions {predictions.shape} and mask {mask.shape} must be [B, T] for tokens "
+            f"{tokens.shape} = [B, T + 1]"
+        )
+    if not mask.any():
+        raise ValueError("accuracy: the mask selects no position")
+    return float((predictions == tokens[:, 1:])[mask].mean())

@@ -17,17 +17,19 @@ $(STAMP): $(BIN)/python pyproject.toml
 	touch $(STAMP)
 
 test: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
 	$(BIN)/python -m pytest -q
 
-RECIPE ?= quickstart
-
-# The quickstart grid, then its report; ends with the tensorboard command to view the curves.
+# The loss grid (quickstart) and the mechanism grid (induction drill), then one report for both;
+# ends with the tensorboard command to view the curves.
 demo: $(STAMP)
 	$(BIN)/h2h-corpus
-	$(BIN)/h2h-train -m recipe=$(RECIPE)
-	$(BIN)/h2h-report runs/$(RECIPE)
+	$(BIN)/h2h-train -m recipe=quickstart
+	$(BIN)/h2h-train -m recipe=induction
+	$(BIN)/h2h-report runs/quickstart runs/induction
 	@echo ""
-	@echo "curves: $(BIN)/tensorboard --logdir runs/$(RECIPE)"
+	@echo "curves: $(BIN)/tensorboard --logdir runs"
 
 clean:
 	rm -rf $(VENV) runs .pytest_cache

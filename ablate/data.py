@@ -174,7 +174,7 @@ def _window_message(message: str, split: str, seq_len: int, eval_windows: int) -
 def _drill(resolved: dict, seq_len: int, batch_size: int, seed: int, device) -> DrillSource:
     from toy_corpus.drills import Drill
 
-    drill = Drill.from_dict({**resolved["data"], "seed": seed})
+    drill = Drill.from_dict(resolved["data"])
     if drill.length - 1 > seq_len:
         raise ConfigError(f"model.seq_len={seq_len}: shorter than the {drill.cfg.kind} drill's sequences "
                           f"({drill.length - 1} inputs); allowed: model.seq_len >= {drill.length - 1}")

@@ -121,7 +121,7 @@ def data_shape(cfg) -> tuple[int, int]:
         return int(data["vocab_size"]), int(cfg.model.seq_len)
     from toy_corpus.drills import Drill
 
-    drill = Drill.from_dict({**data, "seed": int(cfg.seed)})
+    drill = Drill.from_dict(data)
     return int(drill.vocab_size), int(drill.length - 1)
 
 
@@ -183,19 +183,10 @@ def check_all(cfg) -> None:
     from hydra.utils import instantiate
 
     check_ranges(cfg)
-    try:
-        import toy_corpus
-
-        toy_corpus.check_config(OmegaConf.to_container(cfg.data, resolve=True), cfg.model.seq_len)
-    except ValueError as exc:
-        raise ConfigError(f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)) from None
+    check_data(cfg)
     if cfg.get("probes") is not None:
-        from .probes import check_config
+        check_probes_fit(cfg)
 
-        try:
-            check_config(OmegaConf.to_container(cfg.probes, resolve=True))
-        except ValueError as exc:
-            raise ConfigError(one_line(exc)) from None
     from .attention import check_block
 
     try:
@@ -213,6 +204,43 @@ def check_all(cfg) -> None:
         check_block(block)
     except TypeError as exc:
         raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: {exc}") from None
+
+
+def check_data(cfg) -> None:
+    """The data group's own checks (logbook: ``toy_corpus.check_config``; drills:
+    ``DrillConfig.check``), and that its sequences fit ``model.seq_len``."""
+    data = OmegaConf.to_container(cfg.data, resolve=True)
+    try:
+        if data.get("kind", "logbook") == "logbook":
+            import toy_corpus
+
+            toy_corpus.check_config(data, cfg.model.seq_len)
+            return
+        _, length = data_shape(cfg)
+    except ValueError as exc:
+        raise ConfigError(f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)) from None
+    if length > cfg.model.seq_len:
+        raise ConfigError(f"model.seq_len={cfg.model.seq_len}: shorter than the {data['kind']} drill's sequences "
+                          f"({length} inputs); allowed: model.seq_len >= {length}, or a shorter drill")
+
+
+def check_probes_fit(cfg) -> None:
+    """The probes group's own checks, and that each enabled probe runs on the chosen data family."""
+    from .probes import check_config
+    from .probes.drill import DRILL_PROBES
+    from .probes.suite import LOGBOOK_PROBES
+
+    try:
+        probes = check_config(OmegaConf.to_container(cfg.probes, resolve=True))
+    except ValueError as exc:
+        raise ConfigError(one_line(exc)) from None
+    drill = cfg.data.get("kind", "logbook") != "logbook"
+    allowed = DRILL_PROBES if drill else LOGBOOK_PROBES
+    wrong = [name for name in probes["enabled"] if name not in allowed]
+    if wrong:
+        family = f"drill data (data.kind={cfg.data.kind})" if drill else "the logbook corpus"
+        raise ConfigError(f"probes.enabled: {wrong[0]!r} does not run on {family}; allowed: {', '.join(allowed)} "
+                          f"(probes={'drill' if drill else 'default'} has the right set)")
 
 
 def one_line(exc: BaseException) -> str:

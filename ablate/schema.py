@@ -15,6 +15,7 @@ from typing import Any, Dict, List, Optional
 from hydra.core.config_store import ConfigStore
 
 from toy_corpus.config import LogbookSchema
+from toy_corpus.drills import DrillConfig
 
 from .checks import positive_int, positive_number
 
@@ -119,6 +120,7 @@ def register() -> None:
     store.store(name="run_schema", node=RunSchema)
     store.store(group="probes", name="probes_schema", node=ProbesSchema)
     store.store(group="data", name="logbook_schema", node=LogbookSchema)
+    store.store(group="data", name="drill_schema", node=DrillConfig)
 
 
 def _positive(key: str, value, kind=(int, float)) -> None:

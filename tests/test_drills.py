@@ -352,8 +352,13 @@ def test_each_config_file_lists_exactly_the_drill_fields_and_builds(kind):
 
     from omegaconf import OmegaConf
 
+    from ablate.config import compose
+
     path = Path(__file__).resolve().parents[1] / "conf" / "data" / f"{kind}.yaml"
-    d = OmegaConf.to_container(OmegaConf.load(path))
-    assert list(d) == [f.name for f in fields(DrillConfig)] and d["kind"] == kind
+    raw = OmegaConf.to_container(OmegaConf.load(path))
+    assert raw.pop("defaults") == ["drill_schema", "_self_"]
+    assert list(raw) == [f.name for f in fields(DrillConfig)] and raw["kind"] == kind
+    d = OmegaConf.to_container(compose([f"data={kind}", "seed=3"]).data, resolve=True)
+    assert d["seed"] == 3  # the drill follows the run's seed
     drill = Drill.from_dict(d)
     assert drill.length <= 65  # fits conf/model/drill.yaml (seq_len 64 = T)

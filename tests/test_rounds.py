@@ -2,6 +2,7 @@
 
 import math
 
+import pytest
 from scipy import stats
 
 from ablate import records
@@ -64,3 +65,30 @@ def test_rounds_stop_once_the_width_is_reached(tmp_path):
     launched = []
     more_rounds(grid_record(tmp_path, [0, 1, 2], max_seeds=8, resolution=0.01), ["-m"], launched.append)
     assert launched == []  # a constant difference has zero width: resolved after the first round
+
+
+@pytest.mark.e2e
+def test_a_drill_grid_adds_seed_rounds_to_the_cap_and_reports(tmp_path, cache):
+    # Through the real commands: a tiny induction grid whose resolution cannot be met runs its
+    # rounds (2 -> 4 -> 5 seeds), stops at grid.max_seeds, and the report reads it.
+    import subprocess
+    import sys
+
+    from trainer_helpers import ROOT, run_dirs, summary, train
+
+    proc = train(["-m", "recipe=induction", "hydra.launcher.n_jobs=1", "budget.tokens=2e4",
+                  "budget.eval_every_tokens=1e4", "probes=off", "grid.max_seeds=5", "grid.resolution=1e-9",
+                  "seed=0,1"], tmp_path, cache, timeout=600)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert "round 2 adds seeds 2-3" in proc.stdout and "round 3 adds seeds 4-4" in proc.stdout
+    assert "at the cap of 5 seeds" in proc.stdout
+    done = [summary(d) for d in run_dirs(tmp_path)]
+    assert sorted((s["attention"], s["seed"]) for s in done) == sorted(
+        (a, s) for a in ("standard", "differential") for s in range(5))
+    assert all("drill/auc" in s["probes"] and 0.0 <= s["probes"]["drill/auc"] <= 1.0 for s in done)
+    grid = records.read_grid(tmp_path / "induction")
+    assert grid.rounds == 3 and grid.seeds == [0, 1, 2, 3, 4]
+    report = subprocess.run([sys.executable, "-m", "ablate.report", str(tmp_path / "induction")],
+                            capture_output=True, text=True, cwd=ROOT, timeout=300)
+    assert report.returncode == 0, report.stderr[-2000:]
+    assert report.stdout.splitlines()[0].startswith("induction:") and "drill/auc" in report.stdout.splitlines()[0]

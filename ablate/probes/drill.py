@@ -111,3 +111,30 @@ def drill_attention(model: nn.Module, items: Sequence[dict], device="cpu") -> di
         for i in range(len(modules))
         for j, name in enumerate(SHARES)
     }
+
+
+DRILL_PROBES = ("drill_attention", "outliers")
+
+
+def drill_probes(model: nn.Module, drill, probes_cfg: dict, device="cpu") -> dict[str, float]:
+    """The enabled drill probes (``DRILL_PROBES``) on held-out drill sequences, each timed as
+    ``probe_seconds/<name>``: attention shares on ``probes.max_items`` items (256 when null) and the
+    outlier probe on ``probes.val_windows`` sequences."""
+    import time
+
+    from .outliers import outlier_probe
+    from .suite import check_config
+
+    cfg = check_config(probes_cfg)
+    numbers: dict[str, float] = {}
+    for name in cfg["enabled"]:
+        t0 = time.perf_counter()
+        if name == "drill_attention":
+            numbers.update(drill_attention(model, drill.items(cfg["max_items"] or 256), device))
+        elif name == "outliers":
+            tokens, _ = drill.held_out(cfg["val_windows"])
+            numbers.update(outlier_probe(model, tokens, device, cfg["batch_tokens"]))
+        else:
+            raise ValueError(f"probes.enabled: {name!r} does not run on drill data; allowed: {', '.join(DRILL_PROBES)}")
+        numbers[f"probe_seconds/{name}"] = time.perf_counter() - t0
+    return numbers

@@ -39,9 +39,10 @@ from .quantization import quantization_probe
 from .retrieval import retrieval_probe
 from .scan import scan_items
 
-PROBE_NAMES = ("retrieval", "attention", "outliers", "classification", "quantization", "position")
+LOGBOOK_PROBES = ("retrieval", "attention", "outliers", "classification", "quantization", "position")
+PROBE_NAMES = LOGBOOK_PROBES + ("drill_attention",)  # drill_attention runs on drill data only
 DEFAULTS = {
-    "enabled": list(PROBE_NAMES),
+    "enabled": list(LOGBOOK_PROBES),
     "images": True,
     "n_images": 2,
     "image_layers": 2,

@@ -25,6 +25,7 @@ from . import records
 from .checks import one_line
 from .compute import account, steps_from_budget
 from .optim import build_optimizer, lr_at, training_step
+from .runlog import RunLog
 from .signals import StopSignals
 
 
@@ -87,6 +88,7 @@ class RunState:
     last_finite: float | None = None
     history: dict = field(default_factory=dict)  # metric -> [(tokens, value)], kept across resumes
     writer: object = None
+    log: RunLog | None = None  # train.log: the run's story, one timestamped line per event
 
     @property
     def run_dir(self) -> Path:
@@ -202,8 +204,12 @@ def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, di
         train_model=torch.compile(model) if compiled else model, optimizer=optimizer,
         total_steps=total_steps, tokens_per_step=tokens_per_step, warmup=int(o["warmup_fraction"] * total_steps),
         flops_per_token=acc.flops_per_token, schedule=Schedule.of(resolved, tokens_per_step), summary=summary,
-        started=time.time(),
+        started=time.time(), log=RunLog(info.run_dir),
     )
+    state.log.line("start", cell=info.cell, seed=resolved["seed"], data=source.kind, params=acc.params,
+                   flops_per_token=acc.flops_per_token, steps=total_steps, tokens_per_step=tokens_per_step,
+                   budget_match=resolved["budget"]["match"], threads=torch.get_num_threads(), device=str(device),
+                   compile="on" if compiled else "off")
     return state, saved
 
 
@@ -234,6 +240,7 @@ def resume(state: RunState, saved: dict) -> None:
         ) from None
     state.step, state.last_val, state.last_finite = int(saved["step"]), saved.get("last_val"), saved.get("last_train")
     state.history = saved.get("history") or {}
+    state.log.line("resume", step=state.step, tokens=state.tokens)
     print(f"resuming {state.run_dir.name} from step {state.step} ({state.tokens:,} tokens)", flush=True)
 
 
@@ -245,6 +252,7 @@ def save(state: RunState) -> None:
         "last_train": state.last_finite, "history": state.history,
         "model": state.model.state_dict(), "optimizer": state.optimizer.state_dict(),
     })
+    state.log.line("checkpoint", step=state.step, tokens=state.tokens)
 
 
 # --- one step --------------------------------------------------------------------------------
@@ -270,6 +278,8 @@ def note_divergence(state: RunState, loss: float, grad: float) -> None:
     s.diverged_grad_norm = grad if math.isfinite(grad) else str(grad)
     state.writer.add_scalar("loss/train", loss, state.tokens)
     state.writer.add_scalar("optim/grad_norm", grad, state.tokens)
+    state.log.line("diverged", step=state.step, tokens=state.tokens, on=s.diverged_on, loss=loss, grad_norm=grad,
+                   last_finite_loss=state.last_finite)
 
 
 # --- periodic hooks --------------------------------------------------------------------------
@@ -290,6 +300,8 @@ def evaluate(state: RunState) -> None:
     for tag, value in numbers.items():
         state.writer.add_scalar(tag, value, state.tokens)
         state.history.setdefault(tag, []).append((state.tokens, float(value)))
+    state.log.line("eval", step=state.step, tokens=state.tokens, train_loss=state.last_finite,
+                   **{tag.replace("/", "_"): value for tag, value in numbers.items()})
 
 
 def run_probes(state: RunState, probes_cfg: dict | None) -> dict:
@@ -324,6 +336,7 @@ def periodic(state: RunState, stops: StopSignals) -> str | None:
     if stops.received is not None:
         if not saved:
             save(state)
+        state.log.line("signal", name=stops.received, step=step, tokens=state.tokens)
         raise Interrupted(
             f"stopped by {stops.received} at step {step} of {state.total_steps} ({state.tokens:,} tokens); "
             f"checkpoint saved in {state.run_dir}. Run the same command again to resume."
@@ -378,6 +391,8 @@ def finish(state: RunState, status: str) -> records.RunSummary:
     s.wall_seconds = time.time() - state.started
     if status != "stopped":
         records.write_summary(state.run_dir, s)
+    state.log.line("finish", status=status, step=state.step, tokens=state.tokens, val_loss=state.last_val,
+                   train_loss=state.last_finite, seconds=round(s.wall_seconds, 1))
     return s
 
 

@@ -78,7 +78,9 @@ def process_max_rss_bytes() -> int:
 # matmul peak
 
 
-def reference_shapes(d_model: int, ffn_hidden: int, vocab_size: int, tokens: int) -> list[tuple[int, int, int]]:
+def reference_shapes(
+    d_model: int, ffn_hidden: int, vocab_size: int, tokens: int
+) -> list[tuple[int, int, int]]:
     """(m, k, n) of the model's biggest training GEMMs plus two large squares."""
     shapes = [
         (tokens, d_model, ffn_hidden),  # SwiGLU gate / up
@@ -164,9 +166,12 @@ def build_contender(args, attention: str, compile_mode: str) -> Contender:
             block.compile()
     gen = torch.Generator().manual_seed(args.seed)
     batches = [
-        torch.randint(0, args.vocab_size, (args.batch_size, model.seq_len + 1), generator=gen) for _ in range(4)
+        torch.randint(0, args.vocab_size, (args.batch_size, model.seq_len + 1), generator=gen)
+        for _ in range(4)
     ]
-    return Contender(attention, compile_mode, model, optimizer, acc.flops_per_token, acc.params, batches, args.lr, 1.0)
+    return Contender(
+        attention, compile_mode, model, optimizer, acc.flops_per_token, acc.params, batches, args.lr, 1.0
+    )
 
 
 def measure_memory(contender: Contender, can_reset: bool) -> dict:
@@ -177,7 +182,11 @@ def measure_memory(contender: Contender, can_reset: bool) -> dict:
         peak = _read_status_kib("VmHWM") * 1024
         return {"method": "VmHWM reset before one step", "peak_rss_bytes": peak, "rss_before_bytes": before}
     contender.step()
-    return {"method": "getrusage max RSS of the process so far", "peak_rss_bytes": process_max_rss_bytes(), "rss_before_bytes": None}
+    return {
+        "method": "getrusage max RSS of the process so far",
+        "peak_rss_bytes": process_max_rss_bytes(),
+        "rss_before_bytes": None,
+    }
 
 
 # ---------------------------------------------------------------------------------------------
@@ -235,7 +244,9 @@ def summarise(contenders: list[Contender], probes: list[MatmulProbe], args, toke
             "cpu_seconds": c.cpu_times,
         }
     for c in contenders:
-        base = next(b for b in contenders if b.attention == args.baseline and b.compile_mode == c.compile_mode)
+        base = next(
+            b for b in contenders if b.attention == args.baseline and b.compile_mode == c.compile_mode
+        )
         rows[c.name].update(ratios_to(c, base))
     return {
         "settings": {
@@ -278,29 +289,34 @@ def format_table(result: dict) -> str:
         "",
     ]
     header = (
-        f"{'design':<30}{'step ms':>9}{'spread':>8}{'ratio':>7}{'paired':>8}{'cpu ms':>8}{'cpu ratio':>10}{'paired':>8}"
+        f"{'design':<30}{'step ms':>9}{'spread':>8}{'ratio':>7}{'paired':>8}{'cpu ms':>8}{'cpu ratio':>10}{'paired':>8}"  # noqa: E501 (a table row or formula reads best on one line)
         f"{'tok/s':>8}{'GFLOP/s':>9}{'of peak':>9}{'peak MiB':>10}"
     )
     lines += [header, "-" * len(header)]
     for name, r in result["designs"].items():
         lines.append(
-            f"{name:<30}{r['median_step_seconds'] * 1e3:>9.1f}{r['step_spread'] * 100:>7.0f}%{r['step_ratio']:>7.2f}"
-            f"{r['paired_step_ratio']:>8.2f}{r['median_cpu_seconds'] * 1e3:>8.0f}{r['cpu_ratio']:>10.2f}{r['paired_cpu_ratio']:>8.2f}"
-            f"{r['tokens_per_second']:>8.0f}{r['flops_per_second'] / 1e9:>9.1f}{r['share_of_peak'] * 100:>8.1f}%"
+            f"{name:<30}{r['median_step_seconds'] * 1e3:>9.1f}{r['step_spread'] * 100:>7.0f}%{r['step_ratio']:>7.2f}"  # noqa: E501 (a table row or formula reads best on one line)
+            f"{r['paired_step_ratio']:>8.2f}{r['median_cpu_seconds'] * 1e3:>8.0f}{r['cpu_ratio']:>10.2f}{r['paired_cpu_ratio']:>8.2f}"  # noqa: E501 (a table row or formula reads best on one line)
+            f"{r['tokens_per_second']:>8.0f}{r['flops_per_second'] / 1e9:>9.1f}{r['share_of_peak'] * 100:>8.1f}%"  # noqa: E501 (a table row or formula reads best on one line)
             f"{r['memory']['peak_rss_bytes'] / MIB:>10.0f}"
         )
     methods = {r["memory"]["method"] for r in result["designs"].values()}
     lines += [
         "",
-        f"ratio: median step time over the same-compile '{s['baseline']}' row; paired: median over rounds of the",
-        "ratio within a round; cpu: process CPU time per step (all threads); spread: interquartile range / median",
+        f"ratio: median step time over the same-compile '{s['baseline']}' row; paired: median over "
+        "rounds of the",
+        "ratio within a round; cpu: process CPU time per step (all threads); spread: interquartile "
+        "range / median",
         "GFLOP/s and of peak: training FLOPs per token (ablate.compute.account) x tokens / median step time",
         f"peak MiB: whole-process peak RSS during one step ({'; '.join(sorted(methods))}); "
         f"process max RSS {result['process_max_rss_bytes'] / MIB:.0f} MiB",
     ]
     compiled = [(n, r) for n, r in result["designs"].items() if r["compile"] != "none"]
     for name, r in compiled:
-        lines.append(f"{name}: first warm-up step took {r['warmup_seconds'][0]:.1f} s ({r['first_step_extra_seconds']:.1f} s over a timed step)")
+        lines.append(
+            f"{name}: first warm-up step took {r['warmup_seconds'][0]:.1f} s "
+            f"({r['first_step_extra_seconds']:.1f} s over a timed step)"
+        )
     return "\n".join(lines)
 
 
@@ -311,17 +327,34 @@ def format_table(result: dict) -> str:
 def parse_args(argv=None):
     parser = argparse.ArgumentParser(prog="h2h-bench", description=__doc__.split("\n\n")[0])
     parser.add_argument("--model", default="tiny", help="model config under conf/model (default: tiny)")
-    parser.add_argument("--override", action="append", default=[], metavar="KEY=VALUE", help="extra Hydra override (repeatable)")
-    parser.add_argument("--attention", default=None, help="comma-separated choices (default: every one under conf/attention)")
-    parser.add_argument("--baseline", default="standard", help="the choice every ratio is taken against (default: standard)")
+    parser.add_argument(
+        "--override",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="extra Hydra override (repeatable)",
+    )
+    parser.add_argument(
+        "--attention", default=None, help="comma-separated choices (default: every one under conf/attention)"
+    )
+    parser.add_argument(
+        "--baseline", default="standard", help="the choice every ratio is taken against (default: standard)"
+    )
     parser.add_argument("--steps", type=int, default=10, help="timed steps per design (default: 10)")
     parser.add_argument("--warmup", type=int, default=2, help="untimed steps per design first (default: 2)")
     parser.add_argument("--batch-size", type=int, default=16)
     parser.add_argument("--vocab-size", type=int, default=1024)
     parser.add_argument("--lr", type=float, default=1e-3)
     parser.add_argument("--seed", type=int, default=0)
-    parser.add_argument("--threads", type=int, default=None, help="torch intra-op threads (default: torch's own choice)")
-    parser.add_argument("--compile", default="none", help=f"comma-separated, any of {', '.join(COMPILE_MODES)}: torch.compile per block or the whole model")
+    parser.add_argument(
+        "--threads", type=int, default=None, help="torch intra-op threads (default: torch's own choice)"
+    )
+    parser.add_argument(
+        "--compile",
+        default="none",
+        help=f"comma-separated, any of {', '.join(COMPILE_MODES)}: torch.compile per block or the "
+        "whole model",
+    )
     parser.add_argument("--json", type=Path, default=None, help="also write the numbers to this file")
     args = parser.parse_args(argv)
     args.attention = [a.strip() for a in args.attention.split(",")] if args.attention else named_choices()
@@ -368,7 +401,10 @@ def run(args) -> dict:
     contenders = [build_contender(args, a, mode) for mode in args.compile for a in args.attention]
     first = contenders[0].model
     tokens_per_step = args.batch_size * first.seq_len
-    probes = [MatmulProbe(*shape) for shape in reference_shapes(first.d_model, first.ffn_hidden, args.vocab_size, tokens_per_step)]
+    probes = [
+        MatmulProbe(*shape)
+        for shape in reference_shapes(first.d_model, first.ffn_hidden, args.vocab_size, tokens_per_step)
+    ]
     for probe in probes:
         probe.run(record=False)
     for c in contenders:
@@ -376,13 +412,18 @@ def run(args) -> dict:
             c.warmup_seconds.append(c.step()[0])
     can_reset = _reset_peak_rss()
     if not can_reset:
-        print("h2h-bench: /proc/self/clear_refs is not available; memory is the process-wide getrusage max RSS", file=sys.stderr)
+        print(
+            "h2h-bench: /proc/self/clear_refs is not available; memory is the process-wide getrusage max RSS",
+            file=sys.stderr,
+        )
     for c in contenders:
         c.memory = measure_memory(c, can_reset)
     time_rounds(contenders, probes, args.steps)
     for c in contenders:
         if not all(math.isfinite(x) for x in c.losses):
-            raise SystemExit(f"h2h-bench: {c.name} produced a non-finite loss; its timings are not meaningful")
+            raise SystemExit(
+                f"h2h-bench: {c.name} produced a non-finite loss; its timings are not meaningful"
+            )
     return summarise(contenders, probes, args, tokens_per_step)
 
 

@@ -15,7 +15,12 @@ def positive_int(key: str, value, allow_none: bool = False, error: type[Exceptio
 
 def positive_number(key: str, value, error: type[Exception] = ValueError) -> None:
     """Raise ``error`` naming ``key`` unless ``value`` is a finite number > 0."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, (int, float))
+        or not math.isfinite(value)
+        or value <= 0
+    ):
         raise error(f"{key}={value!r}: must be a positive, finite number")
 
 

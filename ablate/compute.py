@@ -38,7 +38,9 @@ def count_params(model: nn.Module) -> tuple[int, int]:
 
 
 def linear_flops_per_token(module: nn.Module) -> float:
-    return float(sum(2 * m.in_features * m.out_features for m in module.modules() if isinstance(m, nn.Linear)))
+    return float(
+        sum(2 * m.in_features * m.out_features for m in module.modules() if isinstance(m, nn.Linear))
+    )
 
 
 def attention_core_flops_per_token(block: nn.Module, seq_len: int) -> float:

@@ -22,7 +22,11 @@ def _run_name(override_dirname: str) -> str:
     return override_dirname or "default"
 
 
-for _name, _fn in (("multiply", lambda a, b: a * b), ("checkout_path", _checkout_path), ("run_name", _run_name)):
+for _name, _fn in (
+    ("multiply", lambda a, b: a * b),
+    ("checkout_path", _checkout_path),
+    ("run_name", _run_name),
+):
     if not OmegaConf.has_resolver(_name):
         OmegaConf.register_new_resolver(_name, _fn)
 
@@ -31,7 +35,9 @@ from .schema import register as _register_schema  # noqa: E402
 _register_schema()
 
 
-def compose(overrides: list[str] | None = None, config_name: str = "config", return_hydra_config: bool = False):
+def compose(
+    overrides: list[str] | None = None, config_name: str = "config", return_hydra_config: bool = False
+):
     """The config ``h2h-train`` would see for these overrides (no run folder, no logging)."""
     from hydra import compose as hydra_compose
     from hydra import initialize_config_dir
@@ -39,7 +45,9 @@ def compose(overrides: list[str] | None = None, config_name: str = "config", ret
 
     GlobalHydra.instance().clear()
     with initialize_config_dir(config_dir=str(CONF_DIR), version_base="1.3"):
-        return hydra_compose(config_name=config_name, overrides=list(overrides or []), return_hydra_config=return_hydra_config)
+        return hydra_compose(
+            config_name=config_name, overrides=list(overrides or []), return_hydra_config=return_hydra_config
+        )
 
 
 def compose_isolated(overrides: list[str]):
@@ -63,7 +71,9 @@ def build_attention_factory(cfg):
     n_layers = cfg.model.n_layers
 
     def factory(layer_index: int):
-        return instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=layer_index, n_layers=n_layers)
+        return instantiate(
+            cfg.attention, d_model=cfg.model.d_model, layer_index=layer_index, n_layers=n_layers
+        )
 
     return factory
 

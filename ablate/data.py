@@ -22,7 +22,9 @@ from .checks import one_line
 from .schema import ConfigError
 
 
-def masked_loss_sum(logits: torch.Tensor, targets: torch.Tensor, mask: torch.Tensor | None) -> tuple[float, int]:
+def masked_loss_sum(
+    logits: torch.Tensor, targets: torch.Tensor, mask: torch.Tensor | None
+) -> tuple[float, int]:
     """Summed cross-entropy over the masked targets (all targets when ``mask`` is None) and their count."""
     losses = torch.nn.functional.cross_entropy(
         logits.reshape(-1, logits.shape[-1]).float(), targets.reshape(-1), reduction="none"
@@ -33,7 +35,9 @@ def masked_loss_sum(logits: torch.Tensor, targets: torch.Tensor, mask: torch.Ten
     return float(losses[keep].sum()), int(keep.sum())
 
 
-def evaluate_loss(model, tokens: torch.Tensor, mask: torch.Tensor | None, batch_size: int) -> tuple[float, np.ndarray]:
+def evaluate_loss(
+    model, tokens: torch.Tensor, mask: torch.Tensor | None, batch_size: int
+) -> tuple[float, np.ndarray]:
     """Mean held-out loss over the (masked) targets and the argmax predictions, in eval mode."""
     was_training = model.training
     model.eval()
@@ -127,8 +131,10 @@ class DrillSource:
         tokens = np.array([t for t, _ in points], dtype=float)
         acc = np.array([a for _, a in points], dtype=float)
         level = float(self.drill.copy_level)
-        out = {"drill/auc": curves.normalised_area(tokens, acc, budget_tokens, level),
-               "drill/copy_level": level}
+        out = {
+            "drill/auc": curves.normalised_area(tokens, acc, budget_tokens, level),
+            "drill/copy_level": level,
+        }
         for name, threshold in (("half", curves.halfway(level)), ("90", 0.9)):
             reached = curves.tokens_to(tokens, acc, threshold)
             out[f"drill/{name}_reached"] = float(reached is not None)
@@ -137,7 +143,9 @@ class DrillSource:
         return out
 
 
-def open_source(resolved: dict, seq_len: int, batch_size: int, seed: int, device) -> LogbookSource | DrillSource:
+def open_source(
+    resolved: dict, seq_len: int, batch_size: int, seed: int, device
+) -> LogbookSource | DrillSource:
     """The data source of a resolved config (``resolved['data']`` names its family with ``kind``)."""
     data = resolved["data"]
     if data.get("kind", "logbook") == "logbook":
@@ -163,11 +171,16 @@ def _logbook(resolved: dict, seq_len: int, batch_size: int, seed: int, device) -
 def _window_message(message: str, split: str, seq_len: int, eval_windows: int) -> str:
     """What the corpus cannot serve is only known once the text is tokenized: name the key."""
     if message.startswith("ids:"):
-        return (f"model.seq_len={seq_len}: longer than the {split} text allows ({message.removeprefix('ids: ')}); "
-                "allowed: a shorter model.seq_len, or more data (data.n_documents)")
+        return (
+            f"model.seq_len={seq_len}: longer than the {split} text allows "
+            f"({message.removeprefix('ids: ')}); "
+            "allowed: a shorter model.seq_len, or more data (data.n_documents)"
+        )
     if message.startswith("n_windows="):
-        return (f"budget.eval_windows={eval_windows}: {message.split(': ', 1)[1]}; "
-                "allowed: fewer windows, or more data (data.n_documents)")
+        return (
+            f"budget.eval_windows={eval_windows}: {message.split(': ', 1)[1]}; "
+            "allowed: fewer windows, or more data (data.n_documents)"
+        )
     return message
 
 
@@ -176,7 +189,11 @@ def _drill(resolved: dict, seq_len: int, batch_size: int, seed: int, device) -> 
 
     drill = Drill.from_dict(resolved["data"])
     if drill.length - 1 > seq_len:
-        raise ConfigError(f"model.seq_len={seq_len}: shorter than the {drill.cfg.kind} drill's sequences "
-                          f"({drill.length - 1} inputs); allowed: model.seq_len >= {drill.length - 1}")
+        raise ConfigError(
+            f"model.seq_len={seq_len}: shorter than the {drill.cfg.kind} drill's sequences "
+            f"({drill.length - 1} inputs); allowed: model.seq_len >= {drill.length - 1}"
+        )
     tokens, mask = drill.held_out(int(resolved["budget"]["eval_windows"]))
-    return DrillSource(drill, batch_size, torch.from_numpy(tokens).to(device), torch.from_numpy(mask).to(device))
+    return DrillSource(
+        drill, batch_size, torch.from_numpy(tokens).to(device), torch.from_numpy(mask).to(device)
+    )

@@ -391,8 +391,9 @@ def compare(
     grid = np.geomspace(xs.min(), xs.max(), 40)
     n_seeds = min(len(v) for cells in (baseline_cells, candidate_cells) for v in _by_seed(cells).values())
     nan = math.nan
-    result = Comparison(axis, baseline_name, candidate_name, x_mid, nan, nan, nan, resamples, 0, n_seeds,
-                        grid_x=grid)
+    result = Comparison(
+        axis, baseline_name, candidate_name, x_mid, nan, nan, nan, resamples, 0, n_seeds, grid_x=grid
+    )
     reason = check_pair(base_fit, cand_fit, x_mid, (min(baseline_cells), max(baseline_cells)))
     if reason:
         result.determined, result.reason = False, reason

@@ -49,7 +49,9 @@ def sweep_jobs(parsed: list) -> list[list[str]]:
         key = o.get_key_element()
         if o.is_sweep_override():
             if not o.is_discrete_sweep():
-                raise ConfigError(f"{key}: only lists of values can be swept (a,b,c or choice(...)), not ranges")
+                raise ConfigError(
+                    f"{key}: only lists of values can be swept (a,b,c or choice(...)), not ranges"
+                )
             axes[key] = [f"{key}={v}" for v in o.sweep_string_iterator()]
         else:
             axes[key] = [f"{key}={o.get_value_element_as_str()}"]
@@ -148,7 +150,9 @@ def check_cells(jobs: list[list[str]]) -> list[Cell]:
 def baseline_overrides(run_overrides: list[str], baseline: str) -> list[str]:
     """A run's overrides with the baseline cell's ``key=value`` pairs in place of the same keys."""
     base = override_dict(baseline.split(","))
-    return [o for o in run_overrides if o.split("=", 1)[0] not in base] + [f"{k}={v}" for k, v in base.items()]
+    return [o for o in run_overrides if o.split("=", 1)[0] not in base] + [
+        f"{k}={v}" for k, v in base.items()
+    ]
 
 
 def baseline_flops_per_token(resolved: dict, run_overrides: list[str]) -> float:
@@ -158,8 +162,10 @@ def baseline_flops_per_token(resolved: dict, run_overrides: list[str]) -> float:
 
     baseline = (resolved.get("grid") or {}).get("baseline")
     if not baseline:
-        raise ConfigError("budget.match=flops with budget.flops=null prices budget.tokens at the baseline's FLOPs "
-                          "per token, but grid.baseline is not set; set budget.flops or grid.baseline")
+        raise ConfigError(
+            "budget.match=flops with budget.flops=null prices budget.tokens at the baseline's FLOPs "
+            "per token, but grid.baseline is not set; set budget.flops or grid.baseline"
+        )
     cfg = compose_isolated(baseline_overrides(run_overrides, baseline))
     return accounting_of(cfg).flops_per_token
 
@@ -191,15 +197,20 @@ def check_all(cfg) -> None:
 
     try:
         with torch.device("meta"):
-            block = instantiate(cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers)
+            block = instantiate(
+                cfg.attention, d_model=cfg.model.d_model, layer_index=0, n_layers=cfg.model.n_layers
+            )
     except Exception as exc:
         cause = exc.__cause__ or exc.__context__
         if isinstance(exc, ValueError) or isinstance(cause, ValueError):
             message = one_line(cause if isinstance(cause, ValueError) else exc)
             if "d_model" in message:
-                message += f" (model.d_model={cfg.model.d_model}, attention.head_dim={cfg.attention.get('head_dim')})"
+                head_dim = cfg.attention.get("head_dim")
+                message += f" (model.d_model={cfg.model.d_model}, attention.head_dim={head_dim})"
             raise ConfigError(f"attention: {message}") from None
-        raise ConfigError(f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {one_line(exc)}") from None
+        raise ConfigError(
+            f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {one_line(exc)}"
+        ) from None
     try:
         check_block(block)
     except TypeError as exc:
@@ -218,10 +229,14 @@ def check_data(cfg) -> None:
             return
         _, length = data_shape(cfg)
     except ValueError as exc:
-        raise ConfigError(f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)) from None
+        raise ConfigError(
+            f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)
+        ) from None
     if length > cfg.model.seq_len:
-        raise ConfigError(f"model.seq_len={cfg.model.seq_len}: shorter than the {data['kind']} drill's sequences "
-                          f"({length} inputs); allowed: model.seq_len >= {length}, or a shorter drill")
+        raise ConfigError(
+            f"model.seq_len={cfg.model.seq_len}: shorter than the {data['kind']} drill's sequences "
+            f"({length} inputs); allowed: model.seq_len >= {length}, or a shorter drill"
+        )
 
 
 def check_probes_fit(cfg) -> None:
@@ -239,8 +254,10 @@ def check_probes_fit(cfg) -> None:
     wrong = [name for name in probes["enabled"] if name not in allowed]
     if wrong:
         family = f"drill data (data.kind={cfg.data.kind})" if drill else "the logbook corpus"
-        raise ConfigError(f"probes.enabled: {wrong[0]!r} does not run on {family}; allowed: {', '.join(allowed)} "
-                          f"(probes={'drill' if drill else 'default'} has the right set)")
+        raise ConfigError(
+            f"probes.enabled: {wrong[0]!r} does not run on {family}; allowed: {', '.join(allowed)} "
+            f"(probes={'drill' if drill else 'default'} has the right set)"
+        )
 
 
 def one_line(exc: BaseException) -> str:
@@ -256,12 +273,19 @@ def one_line(exc: BaseException) -> str:
         return f"{missing.group(1)}={missing.group(2)}: unknown choice; allowed: {', '.join(options)}"
     unknown = re.match(r"Could not override '([^']+)'", lines[0]) if lines else None
     if unknown:
-        return f"{unknown.group(1)}: unknown key; check the spelling, or add a new key with +{unknown.group(1)}=<value>"
+        return (
+            f"{unknown.group(1)}: unknown key; check the spelling, or add a new key with "
+            f"+{unknown.group(1)}=<value>"
+        )
     merging = re.match(r"Error merging override (.+)", lines[0]) if lines else None
     if merging and exc.__cause__ is not None:
         detail = str(exc.__cause__).splitlines()[0].strip()
         return f"{merging.group(1)}: {detail}"
-    keep = [ln for ln in lines if not ln.startswith(("Config search path", "provider=", "object_type=", "Set the environment"))]
+    keep = [
+        ln
+        for ln in lines
+        if not ln.startswith(("Config search path", "provider=", "object_type=", "Set the environment"))
+    ]
     return " | ".join(keep[:3]) if keep else type(exc).__name__
 
 
@@ -339,7 +363,10 @@ def check_fairness(cells: list[Cell], baseline: str, tolerance: float, unequal_a
     if bad:
         raise ConfigError(
             f"grid is not parameter-matched within grid.tolerance={tolerance}: "
-            + "; ".join(f"{r['cell']} has {r['params']:,} params ({(ratio - 1) * 100:+.1f}% vs {ref})" for r, ref, ratio in bad)
+            + "; ".join(
+                f"{r['cell']} has {r['params']:,} params ({(ratio - 1) * 100:+.1f}% vs {ref})"
+                for r, ref, ratio in bad
+            )
             + ". Declare the axis in grid.unequal_axes if that is on purpose.\n"
             + format_table(rows)
         )

@@ -97,7 +97,12 @@ class Decoder(nn.Module):
         init_seed: int | None = None,
     ):
         super().__init__()
-        for name, value in (("vocab_size", vocab_size), ("d_model", d_model), ("n_layers", n_layers), ("seq_len", seq_len)):
+        for name, value in (
+            ("vocab_size", vocab_size),
+            ("d_model", d_model),
+            ("n_layers", n_layers),
+            ("seq_len", seq_len),
+        ):
             positive_int(name, value)
         self.vocab_size, self.d_model, self.n_layers, self.seq_len = vocab_size, d_model, n_layers, seq_len
         self.ffn_hidden = ffn_hidden or swiglu_hidden(d_model)
@@ -114,10 +119,15 @@ class Decoder(nn.Module):
 
     def _init_weights(self, std: float, seed: int | None) -> None:
         residual_std = std / math.sqrt(2 * self.n_layers)
-        residual = {id(b.attention.out_proj.weight) for b in self.blocks} | {id(b.ffn.down.weight) for b in self.blocks}
+        residual = {id(b.attention.out_proj.weight) for b in self.blocks} | {
+            id(b.ffn.down.weight) for b in self.blocks
+        }
         linear = {id(m.weight) for m in self.modules() if isinstance(m, nn.Linear)} | {id(self.embed.weight)}
-        owners = {id(p): (block.attention, local) for block in self.blocks
-                  for local, p in block.attention.named_parameters(recurse=False)}
+        owners = {
+            id(p): (block.attention, local)
+            for block in self.blocks
+            for local, p in block.attention.named_parameters(recurse=False)
+        }
         for name, p in self.named_parameters():  # tied weights appear once, under the embedding's name
             if p.is_meta:
                 continue

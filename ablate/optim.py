@@ -8,7 +8,9 @@ import torch
 from torch import nn
 
 
-def build_optimizer(model: nn.Module, lr: float, betas=(0.9, 0.95), weight_decay: float = 0.1, eps: float = 1e-8):
+def build_optimizer(
+    model: nn.Module, lr: float, betas=(0.9, 0.95), weight_decay: float = 0.1, eps: float = 1e-8
+):
     """AdamW (Loshchilov & Hutter 2019). Weight decay applies to 2-D weights (linear maps and the
     embedding); norms' gains and the lambda vectors are not decayed (common practice, no source)."""
     decay, no_decay = [], []
@@ -34,7 +36,12 @@ def lr_at(step: int, total_steps: int, lr: float, warmup_steps: int, min_lr_rati
 
 
 def training_step(
-    model: nn.Module, optimizer, batch: torch.Tensor, lr: float, grad_clip: float, mask: torch.Tensor | None = None
+    model: nn.Module,
+    optimizer,
+    batch: torch.Tensor,
+    lr: float,
+    grad_clip: float,
+    mask: torch.Tensor | None = None,
 ) -> tuple[torch.Tensor, torch.Tensor]:
     """One optimizer step on ``batch`` (``[B, T+1]`` token ids). The loss is the mean cross-entropy
     over the targets ``batch[:, 1:]``, or over those where ``mask`` (bool ``[B, T]``) is true.
@@ -50,7 +57,9 @@ def training_step(
         loss = nn.functional.cross_entropy(logits[mask], targets[mask])
     optimizer.zero_grad(set_to_none=True)
     loss.backward()
-    grad_norm = torch.nn.utils.clip_grad_norm_(model.parameters(), grad_clip if grad_clip > 0 else float("inf"))
+    grad_norm = torch.nn.utils.clip_grad_norm_(
+        model.parameters(), grad_clip if grad_clip > 0 else float("inf")
+    )
     if torch.isfinite(grad_norm):
         optimizer.step()
     return loss.detach(), grad_norm.detach()

@@ -207,8 +207,10 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
             finally:
                 os.close(dir_fd)
         except OSError as exc:
-            raise WriteError(f"{path}: written, but its folder could not be synced ({exc.strerror}); "
-                             "the new file may not survive a power cut") from None
+            raise WriteError(
+                f"{path}: written, but its folder could not be synced ({exc.strerror}); "
+                "the new file may not survive a power cut"
+            ) from None
 
 
 class FolderBusy(RuntimeError):
@@ -217,8 +219,11 @@ class FolderBusy(RuntimeError):
 
     def __init__(self, folder: Path, holder: dict | None):
         self.folder, self.holder = Path(folder), holder or {}
-        who = (f"pid {self.holder.get('pid')} on {self.holder.get('host')} since {self.holder.get('since')}"
-               if self.holder.get("pid") is not None else "a process that has not yet written its name")
+        who = (
+            f"pid {self.holder.get('pid')} on {self.holder.get('host')} since {self.holder.get('since')}"
+            if self.holder.get("pid") is not None
+            else "a process that has not yet written its name"
+        )
         super().__init__(f"{self.folder}: in use by {who}; wait for it to finish or stop that process")
 
 
@@ -381,8 +386,10 @@ def load_checkpoint(path: Path, fingerprint: str) -> dict:
         state = torch.load(path, map_location="cpu", weights_only=True)
     except pickle.UnpicklingError as exc:
         if "weights only" not in str(exc).lower():
-            raise CheckpointError(f"checkpoint {path} is damaged or truncated and was not loaded ({_first_line(exc)}); "
-                                  "delete it to start the run afresh") from None
+            raise CheckpointError(
+                f"checkpoint {path} is damaged or truncated and was not loaded ({_first_line(exc)}); "
+                "delete it to start the run afresh"
+            ) from None
         raise CheckpointError(
             f"checkpoint {path} holds objects other than tensors and plain containers, which "
             "torch.load(weights_only=True) refuses, so it was not loaded; delete it to start the run afresh"
@@ -394,7 +401,9 @@ def load_checkpoint(path: Path, fingerprint: str) -> dict:
             "delete it to start the run afresh"
         ) from None
     if not isinstance(state, dict) or not {"fingerprint", "step", "model", "optimizer"} <= set(state):
-        raise CheckpointError(f"checkpoint {path} is not a headtohead checkpoint and was not loaded; delete it to start afresh")
+        raise CheckpointError(
+            f"checkpoint {path} is not a headtohead checkpoint and was not loaded; delete it to start afresh"
+        )
     if state["fingerprint"] != fingerprint:
         raise CheckpointError(
             f"checkpoint {path} was written by another config (fingerprint {state['fingerprint']}, "

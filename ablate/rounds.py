@@ -64,18 +64,27 @@ def more_rounds(grid: records.GridRecord, argv: list[str], launch) -> None:
         width = primary_halfwidth(grid)
         shown = "unknown" if width is None else f"{width:.4g}"
         if width is not None and width <= grid.resolution:
-            print(f"seed rounds: {grid.primary_metric} half-width {shown} <= {grid.resolution} after "
-                  f"{len(grid.seeds)} seeds; stopping", flush=True)
+            print(
+                f"seed rounds: {grid.primary_metric} half-width {shown} <= {grid.resolution} after "
+                f"{len(grid.seeds)} seeds; stopping",
+                flush=True,
+            )
             return
         if len(grid.seeds) >= grid.max_seeds:
-            print(f"seed rounds: {grid.primary_metric} half-width {shown} > {grid.resolution} at the cap of "
-                  f"{grid.max_seeds} seeds (grid.max_seeds); stopping", flush=True)
+            print(
+                f"seed rounds: {grid.primary_metric} half-width {shown} > {grid.resolution} at the cap of "
+                f"{grid.max_seeds} seeds (grid.max_seeds); stopping",
+                flush=True,
+            )
             return
         extra = min(len(grid.seeds), grid.max_seeds - len(grid.seeds))
         start = max(grid.seeds) + 1
         grid.seeds = grid.seeds + list(range(start, start + extra))
         grid.jobs, grid.rounds = grid.jobs // (len(grid.seeds) - extra) * len(grid.seeds), grid.rounds + 1
         records.write_grid(grid)
-        print(f"seed rounds: {grid.primary_metric} half-width {shown} > {grid.resolution}; round {grid.rounds} "
-              f"adds seeds {start}-{start + extra - 1}", flush=True)
+        print(
+            f"seed rounds: {grid.primary_metric} half-width {shown} > {grid.resolution}; round {grid.rounds} "
+            f"adds seeds {start}-{start + extra - 1}",
+            flush=True,
+        )
         launch(with_seeds(argv, grid.seeds))

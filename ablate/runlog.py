@@ -98,6 +98,7 @@ class RunLog:
                 f.write(text + "\n")
                 f.flush()
         except OSError as exc:
-            raise WriteError(f"{self.path}: could not append a line ({exc.strerror}); "
-                             "earlier lines are kept") from None
+            raise WriteError(
+                f"{self.path}: could not append a line ({exc.strerror}); earlier lines are kept"
+            ) from None
         return text

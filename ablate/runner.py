@@ -37,7 +37,7 @@ class Interrupted(Exception):
 class RunInfo:
     run_dir: Path
     choices: dict  # config-group choices, e.g. {"attention": "differential", "model": "tiny"}
-    cell: str      # grid cell name (the run's overrides without the seed)
+    cell: str  # grid cell name (the run's overrides without the seed)
     overrides: list
 
 
@@ -113,7 +113,9 @@ def resolve_device(name: str) -> torch.device:
     if name.startswith("cuda") and not torch.cuda.is_available():
         from .schema import ConfigError
 
-        raise ConfigError(f"runtime.device={name!r}: CUDA is not available on this machine; use runtime.device=cpu")
+        raise ConfigError(
+            f"runtime.device={name!r}: CUDA is not available on this machine; use runtime.device=cpu"
+        )
     return torch.device(name)
 
 
@@ -150,7 +152,8 @@ def check_fits(model, saved: dict, path: Path) -> None:
     if missing or unexpected or reshaped:
         example = (missing or unexpected or reshaped)[0]
         raise records.CheckpointError(
-            f"checkpoint {path} does not fit this model ({len(missing)} tensors missing, {len(unexpected)} unexpected, "
+            f"checkpoint {path} does not fit this model ({len(missing)} tensors missing, "
+            f"{len(unexpected)} unexpected, "
             f"{len(reshaped)} of another shape, e.g. {example}); delete it to start the run afresh"
         )
 
@@ -200,26 +203,59 @@ def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, di
     summary = _first_summary(resolved, info, acc, total_steps, tokens_per_step, fingerprint, device, source)
     summary.compiled = compiled
     state = RunState(
-        cfg=cfg, resolved=resolved, info=info, device=device, source=source, model=model,
-        train_model=torch.compile(model) if compiled else model, optimizer=optimizer,
-        total_steps=total_steps, tokens_per_step=tokens_per_step, warmup=int(o["warmup_fraction"] * total_steps),
-        flops_per_token=acc.flops_per_token, schedule=Schedule.of(resolved, tokens_per_step), summary=summary,
-        started=time.time(), log=RunLog(info.run_dir),
+        cfg=cfg,
+        resolved=resolved,
+        info=info,
+        device=device,
+        source=source,
+        model=model,
+        train_model=torch.compile(model) if compiled else model,
+        optimizer=optimizer,
+        total_steps=total_steps,
+        tokens_per_step=tokens_per_step,
+        warmup=int(o["warmup_fraction"] * total_steps),
+        flops_per_token=acc.flops_per_token,
+        schedule=Schedule.of(resolved, tokens_per_step),
+        summary=summary,
+        started=time.time(),
+        log=RunLog(info.run_dir),
     )
-    state.log.line("start", cell=info.cell, seed=resolved["seed"], data=source.kind, params=acc.params,
-                   flops_per_token=acc.flops_per_token, steps=total_steps, tokens_per_step=tokens_per_step,
-                   budget_match=resolved["budget"]["match"], threads=torch.get_num_threads(), device=str(device),
-                   compile="on" if compiled else "off")
+    state.log.line(
+        "start",
+        cell=info.cell,
+        seed=resolved["seed"],
+        data=source.kind,
+        params=acc.params,
+        flops_per_token=acc.flops_per_token,
+        steps=total_steps,
+        tokens_per_step=tokens_per_step,
+        budget_match=resolved["budget"]["match"],
+        threads=torch.get_num_threads(),
+        device=str(device),
+        compile="on" if compiled else "off",
+    )
     return state, saved
 
 
-def _first_summary(resolved, info, acc, total_steps, tokens_per_step, fingerprint, device, source) -> records.RunSummary:
+def _first_summary(
+    resolved, info, acc, total_steps, tokens_per_step, fingerprint, device, source
+) -> records.RunSummary:
     return records.RunSummary(
-        status="running", attention=info.choices.get("attention"), seed=resolved["seed"], cell=info.cell,
-        choices=info.choices, overrides=info.overrides, data_kind=source.kind, params=acc.params,
-        non_embedding_params=acc.non_embedding_params, flops_per_token=acc.flops_per_token,
-        budget_match=resolved["budget"]["match"], total_steps=total_steps, tokens_per_step=tokens_per_step,
-        fingerprint=fingerprint, environment=records.environment(str(device)),
+        status="running",
+        attention=info.choices.get("attention"),
+        seed=resolved["seed"],
+        cell=info.cell,
+        choices=info.choices,
+        overrides=info.overrides,
+        data_kind=source.kind,
+        params=acc.params,
+        non_embedding_params=acc.non_embedding_params,
+        flops_per_token=acc.flops_per_token,
+        budget_match=resolved["budget"]["match"],
+        total_steps=total_steps,
+        tokens_per_step=tokens_per_step,
+        fingerprint=fingerprint,
+        environment=records.environment(str(device)),
     )
 
 
@@ -238,7 +274,11 @@ def resume(state: RunState, saved: dict) -> None:
             f"checkpoint {path} does not fit this model or optimizer ({type(exc).__name__}: "
             f"{one_line(exc)}); delete it to start the run afresh"
         ) from None
-    state.step, state.last_val, state.last_finite = int(saved["step"]), saved.get("last_val"), saved.get("last_train")
+    state.step, state.last_val, state.last_finite = (
+        int(saved["step"]),
+        saved.get("last_val"),
+        saved.get("last_train"),
+    )
     state.history = saved.get("history") or {}
     state.log.line("resume", step=state.step, tokens=state.tokens)
     print(f"resuming {state.run_dir.name} from step {state.step} ({state.tokens:,} tokens)", flush=True)
@@ -247,11 +287,18 @@ def resume(state: RunState, saved: dict) -> None:
 def save(state: RunState) -> None:
     """A checkpoint at the current step; the events it vouches for reach the disk first."""
     state.writer.flush()
-    records.save_checkpoint(state.run_dir / records.CHECKPOINT, {
-        "fingerprint": state.summary.fingerprint, "step": state.step, "last_val": state.last_val,
-        "last_train": state.last_finite, "history": state.history,
-        "model": state.model.state_dict(), "optimizer": state.optimizer.state_dict(),
-    })
+    records.save_checkpoint(
+        state.run_dir / records.CHECKPOINT,
+        {
+            "fingerprint": state.summary.fingerprint,
+            "step": state.step,
+            "last_val": state.last_val,
+            "last_train": state.last_finite,
+            "history": state.history,
+            "model": state.model.state_dict(),
+            "optimizer": state.optimizer.state_dict(),
+        },
+    )
     state.log.line("checkpoint", step=state.step, tokens=state.tokens)
 
 
@@ -278,8 +325,15 @@ def note_divergence(state: RunState, loss: float, grad: float) -> None:
     s.diverged_grad_norm = grad if math.isfinite(grad) else str(grad)
     state.writer.add_scalar("loss/train", loss, state.tokens)
     state.writer.add_scalar("optim/grad_norm", grad, state.tokens)
-    state.log.line("diverged", step=state.step, tokens=state.tokens, on=s.diverged_on, loss=loss, grad_norm=grad,
-                   last_finite_loss=state.last_finite)
+    state.log.line(
+        "diverged",
+        step=state.step,
+        tokens=state.tokens,
+        on=s.diverged_on,
+        loss=loss,
+        grad_norm=grad,
+        last_finite_loss=state.last_finite,
+    )
 
 
 # --- periodic hooks --------------------------------------------------------------------------
@@ -287,8 +341,13 @@ def note_divergence(state: RunState, loss: float, grad: float) -> None:
 
 def log_step(state: RunState, loss: float, grad: float, lr: float, speed: float) -> None:
     w, t = state.writer, state.tokens
-    for tag, value in (("loss/train", loss), ("optim/lr", lr), ("optim/grad_norm", grad),
-                       ("speed/tokens_per_second", speed), ("compute/train_flops", t * state.flops_per_token)):
+    for tag, value in (
+        ("loss/train", loss),
+        ("optim/lr", lr),
+        ("optim/grad_norm", grad),
+        ("speed/tokens_per_second", speed),
+        ("compute/train_flops", t * state.flops_per_token),
+    ):
         w.add_scalar(tag, value, t)
     for tag, value in block_scalars(state.model).items():
         w.add_scalar(tag, value, t)
@@ -300,8 +359,13 @@ def evaluate(state: RunState) -> None:
     for tag, value in numbers.items():
         state.writer.add_scalar(tag, value, state.tokens)
         state.history.setdefault(tag, []).append((state.tokens, float(value)))
-    state.log.line("eval", step=state.step, tokens=state.tokens, train_loss=state.last_finite,
-                   **{tag.replace("/", "_"): value for tag, value in numbers.items()})
+    state.log.line(
+        "eval",
+        step=state.step,
+        tokens=state.tokens,
+        train_loss=state.last_finite,
+        **{tag.replace("/", "_"): value for tag, value in numbers.items()},
+    )
 
 
 def run_probes(state: RunState, probes_cfg: dict | None) -> dict:
@@ -382,7 +446,9 @@ def finish(state: RunState, status: str) -> records.RunSummary:
     s.final_train_loss, s.final_val_loss = state.last_finite, state.last_val
     if status == "completed":
         s.probes = run_probes(state, state.resolved.get("probes"))
-        for name, value in state.source.final_metrics(state.history, state.total_steps * state.tokens_per_step).items():
+        for name, value in state.source.final_metrics(
+            state.history, state.total_steps * state.tokens_per_step
+        ).items():
             s.probes[name] = value
             state.writer.add_scalar(f"final/{name}", value, state.tokens)
         state.writer.add_scalar("final/val_loss", state.last_val, state.tokens)
@@ -391,8 +457,15 @@ def finish(state: RunState, status: str) -> records.RunSummary:
     s.wall_seconds = time.time() - state.started
     if status != "stopped":
         records.write_summary(state.run_dir, s)
-    state.log.line("finish", status=status, step=state.step, tokens=state.tokens, val_loss=state.last_val,
-                   train_loss=state.last_finite, seconds=round(s.wall_seconds, 1))
+    state.log.line(
+        "finish",
+        status=status,
+        step=state.step,
+        tokens=state.tokens,
+        val_loss=state.last_val,
+        train_loss=state.last_finite,
+        seconds=round(s.wall_seconds, 1),
+    )
     return s
 
 
@@ -405,8 +478,9 @@ def open_writer(state: RunState):
 
     writer = SummaryWriter(log_dir=str(state.run_dir), purge_step=state.tokens + 1 if state.step else None)
     if state.step == 0:
-        exp, ssi, sei = hparams(hparams_of(state.info.choices, state.resolved),
-                                {"final/val_loss": 0.0, "final/train_loss": 0.0})
+        exp, ssi, sei = hparams(
+            hparams_of(state.info.choices, state.resolved), {"final/val_loss": 0.0, "final/train_loss": 0.0}
+        )
         for s in (exp, ssi, sei):
             writer.file_writer.add_summary(s)
         writer.add_text("config", "```\n" + OmegaConf.to_yaml(state.cfg, resolve=True) + "\n```", 0)
@@ -417,9 +491,14 @@ def progress_bar(state: RunState):
     from tqdm import tqdm
 
     return tqdm(
-        total=state.total_steps * state.tokens_per_step, initial=state.tokens, unit="tok", unit_scale=True,
-        desc=state.info.cell or state.run_dir.name, disable=not state.resolved["runtime"]["progress"],
-        dynamic_ncols=True, leave=False,
+        total=state.total_steps * state.tokens_per_step,
+        initial=state.tokens,
+        unit="tok",
+        unit_scale=True,
+        desc=state.info.cell or state.run_dir.name,
+        disable=not state.resolved["runtime"]["progress"],
+        dynamic_ncols=True,
+        leave=False,
     )
 
 

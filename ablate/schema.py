@@ -8,7 +8,6 @@ allowed.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional
 

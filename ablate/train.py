@@ -17,16 +17,30 @@ from pathlib import Path
 
 from . import records
 from .checks import one_line
-from .config import CONF_DIR, CHECKOUT
+from .config import CONF_DIR
 from .schema import ConfigError
 
-PASS_THROUGH = ("--help", "-h", "--hydra-help", "--cfg", "-c", "--info", "-i", "--resolve", "--package", "-p",
-                "--shell-completion", "-sc", "--version")
+PASS_THROUGH = (
+    "--help",
+    "-h",
+    "--hydra-help",
+    "--cfg",
+    "-c",
+    "--info",
+    "-i",
+    "--resolve",
+    "--package",
+    "-p",
+    "--shell-completion",
+    "-sc",
+    "--version",
+)
 EXIT_CONFIG = 2
 
 
 def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
     multirun = any(a in ("-m", "--multirun") for a in argv)
+
     def hydra_only(a: str) -> bool:  # launcher and output settings; the search path shapes the config
         key = a.lstrip("+~")
         return key.startswith("hydra") and not key.startswith("hydra.searchpath")
@@ -40,8 +54,15 @@ def preflight(argv: list[str]) -> records.GridRecord | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
     from omegaconf import OmegaConf
 
-    from .grid import (check_cells, check_fairness, compose_checked, expand_jobs, find_baseline,
-                       output_folder, override_dict)
+    from .grid import (
+        check_cells,
+        check_fairness,
+        compose_checked,
+        expand_jobs,
+        find_baseline,
+        output_folder,
+        override_dict,
+    )
 
     multirun, design, hydra_side = _split_argv(argv)
     if not multirun:
@@ -56,12 +77,20 @@ def preflight(argv: list[str]) -> records.GridRecord | None:
     settings = [override_dict(c.overrides) for c in cells]
     varied = sorted({k for d in settings for k in d if len({other.get(k) for other in settings}) > 1})
     return records.GridRecord(
-        name=str(grid.name), dir=str(output_folder(design + hydra_side, multirun=True)), baseline=baseline,
-        recipe=base.hydra.runtime.choices.get("recipe"), primary_metric=str(grid.primary_metric),
-        resolution=float(grid.resolution), max_seeds=grid.max_seeds,
-        varied=[v for v in varied if v != "seed"], unequal_axes=list(grid.unequal_axes), tolerance=grid.tolerance,
-        sweep=OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None, jobs=len(jobs),
-        seeds=sorted({int(override_dict(j).get("seed", base.seed)) for j in jobs}), fairness=rows,
+        name=str(grid.name),
+        dir=str(output_folder(design + hydra_side, multirun=True)),
+        baseline=baseline,
+        recipe=base.hydra.runtime.choices.get("recipe"),
+        primary_metric=str(grid.primary_metric),
+        resolution=float(grid.resolution),
+        max_seeds=grid.max_seeds,
+        varied=[v for v in varied if v != "seed"],
+        unequal_axes=list(grid.unequal_axes),
+        tolerance=grid.tolerance,
+        sweep=OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None,
+        jobs=len(jobs),
+        seeds=sorted({int(override_dict(j).get("seed", base.seed)) for j in jobs}),
+        fairness=rows,
     )
 
 
@@ -138,15 +167,24 @@ def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> records.RunS
         print(f"h2h-train: {exc}", file=sys.stderr, flush=True)
         sys.exit(130)
     except KeyboardInterrupt:  # Ctrl-C or SIGTERM outside the training loop (corpus build, probes)
-        print(f"h2h-train: interrupted outside the training loop; {run_dir} keeps its last complete "
-              "checkpoint, if any. Run the same command again to resume.", file=sys.stderr, flush=True)
+        print(
+            f"h2h-train: interrupted outside the training loop; {run_dir} keeps its last complete "
+            "checkpoint, if any. Run the same command again to resume.",
+            file=sys.stderr,
+            flush=True,
+        )
         sys.exit(130)
     except records.WriteError as exc:  # disk full or not writable: the folder keeps its previous files
         print(f"h2h-train: error: {exc}", file=sys.stderr, flush=True)
         if not in_grid:
             sys.exit(1)
-        return records.RunSummary(status="failed", attention=info.choices.get("attention"), cell=info.cell,
-                                  seed=int(cfg.seed), error=str(exc))
+        return records.RunSummary(
+            status="failed",
+            attention=info.choices.get("attention"),
+            cell=info.cell,
+            seed=int(cfg.seed),
+            error=str(exc),
+        )
     except (ConfigError, records.CheckpointError) as exc:
         if not in_grid:
             with open(run_dir / "train.log", "a") as log:  # the folder keeps the reason
@@ -170,16 +208,24 @@ def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> records.RunS
 
 def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> records.RunSummary:
     summary = records.RunSummary(
-        status="failed", attention=info.choices.get("attention"), cell=info.cell, seed=int(cfg.seed),
-        choices=info.choices, overrides=info.overrides, error=one_line(f"{type(exc).__name__}: {exc}", 1000),
+        status="failed",
+        attention=info.choices.get("attention"),
+        cell=info.cell,
+        seed=int(cfg.seed),
+        choices=info.choices,
+        overrides=info.overrides,
+        error=one_line(f"{type(exc).__name__}: {exc}", 1000),
     )
     earlier = records.read_summary(run_dir)
     if earlier and earlier.status != "failed":
         # e.g. a grid relaunched after its recipe changed: the earlier result stays, under another name
         kept = run_dir / f"summary.{earlier.fingerprint or 'earlier'}.json"
         (run_dir / records.SUMMARY).replace(kept)
-        print(f"run {run_dir.name}: its earlier {earlier.status} summary was kept as {kept.name}",
-              file=sys.stderr, flush=True)
+        print(
+            f"run {run_dir.name}: its earlier {earlier.status} summary was kept as {kept.name}",
+            file=sys.stderr,
+            flush=True,
+        )
     records.write_summary(run_dir, summary)
     print(f"run {run_dir.name} failed: {summary.error}", file=sys.stderr, flush=True)
     return summary
@@ -188,14 +234,25 @@ def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> records.Run
 def _report_run(s: records.RunSummary, run_dir: Path) -> None:
     if s.status == "completed":
         drill = f", held-out accuracy {s.probes['drill/acc']:.3f}" if "drill/acc" in s.probes else ""
-        print(f"done {s.cell} seed {s.seed}: val loss {s.final_val_loss:.4f}{drill} after {s.tokens:,} tokens "
-              f"in {s.wall_seconds:.0f} s -> {run_dir}", flush=True)
+        print(
+            f"done {s.cell} seed {s.seed}: val loss {s.final_val_loss:.4f}{drill} after {s.tokens:,} tokens "
+            f"in {s.wall_seconds:.0f} s -> {run_dir}",
+            flush=True,
+        )
     elif s.status == "diverged":
-        print(f"DIVERGED {s.cell} seed {s.seed}: non-finite loss or gradient at {s.diverged_at_tokens:,} tokens "
-              f"(last finite loss {s.last_finite_loss}); event files kept in {run_dir}", file=sys.stderr, flush=True)
+        print(
+            f"DIVERGED {s.cell} seed {s.seed}: non-finite loss or gradient at {s.diverged_at_tokens:,} "
+            "tokens "
+            f"(last finite loss {s.last_finite_loss}); event files kept in {run_dir}",
+            file=sys.stderr,
+            flush=True,
+        )
     elif s.status == "stopped":
-        print(f"stopped {run_dir.name} at step {s.step} as asked (runtime.stop_after_steps); "
-              "run the same command without it to continue", flush=True)
+        print(
+            f"stopped {run_dir.name} at step {s.step} as asked (runtime.stop_after_steps); "
+            "run the same command without it to continue",
+            flush=True,
+        )
 
 
 def _hydra_app():

@@ -65,7 +65,9 @@ def _randomise_lambda(block):
 @pytest.mark.parametrize("lambda_mode", ["learned", "fixed"])
 @pytest.mark.parametrize("layer_index", [0, 1, 3, 7])
 def test_differential_matches_published_equations(head_norm, lambda_mode, layer_index):
-    block = DifferentialAttention(D_MODEL, layer_index, 8, HEAD_DIM, head_norm=head_norm, lambda_mode=lambda_mode)
+    block = DifferentialAttention(
+        D_MODEL, layer_index, 8, HEAD_DIM, head_norm=head_norm, lambda_mode=lambda_mode
+    )
     _randomise_lambda(block)
     x = torch.randn(3, T, D_MODEL)
     expected = reference_differential(block, x)
@@ -73,9 +75,7 @@ def test_differential_matches_published_equations(head_norm, lambda_mode, layer_
     assert (got - expected).abs().max().item() <= 1e-5
 
 
-@pytest.mark.parametrize(
-    "layer, expected", [(1, 0.2), (2, 0.3555), (3, 0.4707), (4, 0.5561)]
-)
+@pytest.mark.parametrize("layer, expected", [(1, 0.2), (2, 0.3555), (3, 0.4707), (4, 0.5561)])
 def test_lambda_init_depth_schedule(layer, expected):
     # Ye et al. 2025: lambda_init = 0.8 - 0.6 exp(-0.3 (l - 1)); values rounded to 4 decimals.
     assert round(depth_lambda_init(layer), 4) == expected
@@ -135,23 +135,26 @@ def test_rotary_matches_complex_form_and_depends_on_offset_only():
     assert abs((qs[5] @ ks[2]) - (qs[5] @ ks[4])) > 1e-4  # a different offset does change it
 
 
-@pytest.mark.parametrize("make", [
-    lambda: StandardAttention(D_MODEL, 0, 4, HEAD_DIM),
-    lambda: StandardAttention(D_MODEL, 0, 4, HEAD_DIM, head_norm=True),
-    lambda: StandardAttention(D_MODEL, 0, 4, 2 * HEAD_DIM),
-    lambda: DifferentialAttention(D_MODEL, 0, 4, HEAD_DIM),
-    lambda: DifferentialAttention(D_MODEL, 2, 4, HEAD_DIM, head_norm=False),
-    lambda: DifferentialAttention(D_MODEL, 1, 4, HEAD_DIM, lambda_mode="fixed"),
-])
+@pytest.mark.parametrize(
+    "make",
+    [
+        lambda: StandardAttention(D_MODEL, 0, 4, HEAD_DIM),
+        lambda: StandardAttention(D_MODEL, 0, 4, HEAD_DIM, head_norm=True),
+        lambda: StandardAttention(D_MODEL, 0, 4, 2 * HEAD_DIM),
+        lambda: DifferentialAttention(D_MODEL, 0, 4, HEAD_DIM),
+        lambda: DifferentialAttention(D_MODEL, 2, 4, HEAD_DIM, head_norm=False),
+        lambda: DifferentialAttention(D_MODEL, 1, 4, HEAD_DIM, lambda_mode="fixed"),
+    ],
+)
 def test_blocks_are_causal(make):
     block = make()
     x = torch.randn(1, T, D_MODEL)
     for t in (0, 7, T - 2):
         changed = x.clone()
-        changed[:, t + 1:] = torch.randn_like(changed[:, t + 1:])
+        changed[:, t + 1 :] = torch.randn_like(changed[:, t + 1 :])
         before, after = block(x), block(changed)
         assert torch.allclose(before[:, : t + 1], after[:, : t + 1], atol=1e-6)
-        assert not torch.allclose(before[:, t + 1:], after[:, t + 1:], atol=1e-6)
+        assert not torch.allclose(before[:, t + 1 :], after[:, t + 1 :], atol=1e-6)
 
 
 def test_attention_rows_sum_to_one_minus_lambda():
@@ -168,14 +171,29 @@ def test_attention_rows_sum_to_one_minus_lambda():
     assert torch.all(w.triu(1) == 0)  # nothing on future positions
 
 
-@pytest.mark.parametrize("kwargs, words", [
-    (dict(d_model=100, head_dim=32), ["d_model=100", "32"]),
-    (dict(d_model=96, head_dim=32, cls=DifferentialAttention), ["d_model=96", "64"]),
-    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_mode="learnt"), ["lambda_mode='learnt'", "learned", "fixed"]),
-    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init=1.2), ["lambda_init=1.2", "(0, 1)"]),
-    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init=0.0), ["lambda_init=0.0", "(0, 1)"]),
-    (dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init="deep"), ["lambda_init='deep'", "depth"]),
-])
+@pytest.mark.parametrize(
+    "kwargs, words",
+    [
+        (dict(d_model=100, head_dim=32), ["d_model=100", "32"]),
+        (dict(d_model=96, head_dim=32, cls=DifferentialAttention), ["d_model=96", "64"]),
+        (
+            dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_mode="learnt"),
+            ["lambda_mode='learnt'", "learned", "fixed"],
+        ),
+        (
+            dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init=1.2),
+            ["lambda_init=1.2", "(0, 1)"],
+        ),
+        (
+            dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init=0.0),
+            ["lambda_init=0.0", "(0, 1)"],
+        ),
+        (
+            dict(d_model=128, head_dim=32, cls=DifferentialAttention, lambda_init="deep"),
+            ["lambda_init='deep'", "depth"],
+        ),
+    ],
+)
 def test_bad_arguments_name_the_argument(kwargs, words):
     cls = kwargs.pop("cls", StandardAttention)
     with pytest.raises(ValueError) as err:

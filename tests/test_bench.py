@@ -6,19 +6,27 @@ import statistics
 import time
 
 import pytest
-
-from ablate.bench import main, named_choices, paired_ratio, ratios_to, time_rounds
 from conftest import NAMED_ATTENTION
 
+from ablate.bench import main, named_choices, paired_ratio, ratios_to, time_rounds
+
 SMALL = [
-    "--override", "model.d_model=64",
-    "--override", "model.n_layers=2",
-    "--override", "model.seq_len=32",
-    "--batch-size", "2",
-    "--vocab-size", "64",
-    "--steps", "4",
-    "--warmup", "1",
-    "--threads", "1",
+    "--override",
+    "model.d_model=64",
+    "--override",
+    "model.n_layers=2",
+    "--override",
+    "model.seq_len=32",
+    "--batch-size",
+    "2",
+    "--vocab-size",
+    "64",
+    "--steps",
+    "4",
+    "--warmup",
+    "1",
+    "--threads",
+    "1",
 ]
 
 
@@ -48,9 +56,19 @@ def test_bench_writes_every_field_with_sane_values(tmp_path, capsys):
     for name, row in designs.items():
         assert name in printed
         assert len(row["step_seconds"]) == len(row["cpu_seconds"]) == 4
-        for key in ("median_step_seconds", "min_step_seconds", "tokens_per_second", "flops_per_second",
-                    "share_of_peak", "flops_per_token", "step_ratio", "paired_step_ratio",
-                    "median_cpu_seconds", "cpu_ratio", "final_loss"):
+        for key in (
+            "median_step_seconds",
+            "min_step_seconds",
+            "tokens_per_second",
+            "flops_per_second",
+            "share_of_peak",
+            "flops_per_token",
+            "step_ratio",
+            "paired_step_ratio",
+            "median_cpu_seconds",
+            "cpu_ratio",
+            "final_loss",
+        ):
             assert _positive_finite(row[key]), (name, key, row[key])
         assert row["min_step_seconds"] <= row["median_step_seconds"]
         # 64 tokens per step (batch 2 x seq_len 32, set above) in the median step time.
@@ -64,7 +82,9 @@ def test_bench_writes_every_field_with_sane_values(tmp_path, capsys):
     # Differential attention costs more per token (two value products per head).
     assert designs["differential"]["flops_per_token"] > designs["standard"]["flops_per_token"]
     load = settings["load_average"]
-    assert len(load["before"]) == len(load["after"]) == 3 and all(x >= 0 for x in load["before"] + load["after"])
+    assert len(load["before"]) == len(load["after"]) == 3 and all(
+        x >= 0 for x in load["before"] + load["after"]
+    )
     assert "load average" in printed and settings["baseline"] == "standard"
 
 
@@ -76,7 +96,7 @@ def test_paired_ratio_is_the_median_of_within_round_ratios():
 
 
 class SpinContender:
-    """Busy-waits a known time per step, so its wall and CPU cost are known from outside."""
+    """Busy-waits a known CPU time per step, so its cost is known from outside the bench."""
 
     def __init__(self, name: str, seconds: float):
         self.name, self.seconds = name, seconds
@@ -84,33 +104,53 @@ class SpinContender:
 
     def step(self):
         cpu_start, start = time.process_time(), time.perf_counter()
-        while time.perf_counter() - start < self.seconds:
+        while time.process_time() - cpu_start < self.seconds:
             pass
         return time.perf_counter() - start, time.process_time() - cpu_start
 
 
 def test_rounds_recover_known_relative_cost():
-    # A 3x costlier spin loop must come out at ~3x in wall and CPU time. Tolerance (ours): +-20 %,
-    # for a shared machine that may deschedule a loop mid-way.
-    cheap, dear = SpinContender("cheap", 0.004), SpinContender("dear", 0.012)
+    # A loop spinning 3x the CPU time must come out at ~3x in CPU time (tolerance ours: +-20 %) and
+    # in wall time within +-50 % (a shared machine may deschedule a loop mid-way, which stretches
+    # wall time but not CPU time).
+    cheap, dear = SpinContender("cheap", 0.01), SpinContender("dear", 0.03)
     time_rounds([cheap, dear], [], 9)
     assert len(cheap.times) == len(dear.cpu_times) == 9
     ratios = ratios_to(dear, cheap)
     assert ratios["baseline"] == "cheap"
-    for key in ("step_ratio", "paired_step_ratio", "cpu_ratio", "paired_cpu_ratio"):
+    for key in ("cpu_ratio", "paired_cpu_ratio"):
         assert ratios[key] == pytest.approx(3.0, rel=0.2), key
+    for key in ("step_ratio", "paired_step_ratio"):
+        assert ratios[key] == pytest.approx(3.0, rel=0.5), key
 
 
 def test_baseline_option_sets_every_ratio_and_joins_the_choices(tmp_path):
     out = tmp_path / "bench.json"
-    assert main([*SMALL, "--model", "drill", "--attention", "standard", "--baseline", "differential",
-                 "--json", str(out)]) == 0
+    assert (
+        main(
+            [
+                *SMALL,
+                "--model",
+                "drill",
+                "--attention",
+                "standard",
+                "--baseline",
+                "differential",
+                "--json",
+                str(out),
+            ]
+        )
+        == 0
+    )
     result = json.loads(out.read_text())
     assert result["settings"]["model"] == "drill" and result["settings"]["seq_len"] == 32  # override wins
     assert sorted(result["designs"]) == ["differential", "standard"]
     for row in result["designs"].values():
         assert row["baseline"] == "differential"
-        assert all(_positive_finite(row[k]) for k in ("step_ratio", "paired_step_ratio", "cpu_ratio", "paired_cpu_ratio"))
+        assert all(
+            _positive_finite(row[k])
+            for k in ("step_ratio", "paired_step_ratio", "cpu_ratio", "paired_cpu_ratio")
+        )
 
 
 def test_named_choices_are_the_config_files_standard_first():
@@ -119,13 +159,16 @@ def test_named_choices_are_the_config_files_standard_first():
     assert sorted(names) == sorted(NAMED_ATTENTION)
 
 
-@pytest.mark.parametrize("argv, words", [
-    (["--attention", "standard,sparse"], ["--attention='sparse'", "differential"]),
-    (["--compile", "graph"], ["--compile='graph'", "block", "model"]),
-    (["--steps", "0"], ["--steps=0"]),
-    (["--model", "huge"], ["--model='huge'", "drill", "small", "tiny"]),
-    (["--baseline", "sparse"], ["--baseline='sparse'", "standard", "differential"]),
-])
+@pytest.mark.parametrize(
+    "argv, words",
+    [
+        (["--attention", "standard,sparse"], ["--attention='sparse'", "differential"]),
+        (["--compile", "graph"], ["--compile='graph'", "block", "model"]),
+        (["--steps", "0"], ["--steps=0"]),
+        (["--model", "huge"], ["--model='huge'", "drill", "small", "tiny"]),
+        (["--baseline", "sparse"], ["--baseline='sparse'", "standard", "differential"]),
+    ],
+)
 def test_bad_options_name_the_option(argv, words, capsys):
     with pytest.raises(SystemExit) as err:
         main(argv)

@@ -1,19 +1,18 @@
 """Parameter and FLOP accounting against Kaplan et al. 2020 and torch's FLOP counter."""
 
 import pytest
-import torch
+from conftest import NAMED_ATTENTION
 from torch.nn.attention import SDPBackend, sdpa_kernel
 
 from ablate.attention.common import full_window_products
 from ablate.compute import (
     account,
-    ratios,
     count_params,
     measure_flops_per_token,
+    ratios,
     steps_from_budget,
 )
 from ablate.config import build_model, compose
-from conftest import NAMED_ATTENTION
 
 VOCAB = 1024
 
@@ -72,17 +71,22 @@ def test_ratios_against_closed_forms():
     r = ratios(account(diff_model), account(std_model))
     L, d, T = std_model.n_layers, std_model.d_model, std_model.seq_len
     params = count_params(std_model)[0]
-    assert r["params_ratio"] == pytest.approx((params + 4 * diff_model.blocks[0].attention.head_dim * L) / params)
+    assert r["params_ratio"] == pytest.approx(
+        (params + 4 * diff_model.blocks[0].attention.head_dim * L) / params
+    )
     linear = 2 * (L * (4 * d * d + 3 * d * std_model.ffn_hidden) + d * VOCAB)
     assert r["flops_ratio"] == pytest.approx((linear + L * 6 * T * d) / (linear + L * 4 * T * d))
 
 
 def test_user_variant_without_declared_flops_is_measured():
     from examples.gated_attention import GatedAttention
+
     from ablate.model import Decoder
 
     model = Decoder(VOCAB, 128, 2, 64, lambda i: GatedAttention(128, i, 2, 32))
-    declared = Decoder(VOCAB, 128, 2, 64, lambda i: __import__("ablate").attention.StandardAttention(128, i, 2, 32))
+    declared = Decoder(
+        VOCAB, 128, 2, 64, lambda i: __import__("ablate").attention.StandardAttention(128, i, 2, 32)
+    )
     with sdpa_kernel(SDPBackend.MATH):
         assert account(model).flops_per_token == pytest.approx(account(declared).flops_per_token, rel=0.01)
 

@@ -54,7 +54,9 @@ def test_same_seed_gives_identical_text_and_ids_and_other_seed_differs(tmp_path,
     again = get_corpus(small_config(), SEQ_LEN, tmp_path / "a")
     assert again.cache_path != corpus.cache_path
     assert (again.cache_path / "train.txt").read_bytes() == (corpus.cache_path / "train.txt").read_bytes()
-    assert (again.cache_path / "tokenizer.model").read_bytes() == (corpus.cache_path / "tokenizer.model").read_bytes()
+    assert (again.cache_path / "tokenizer.model").read_bytes() == (
+        corpus.cache_path / "tokenizer.model"
+    ).read_bytes()
     assert np.array_equal(again.train_ids, corpus.train_ids) and np.array_equal(again.val_ids, corpus.val_ids)
     assert again.probe_sets == corpus.probe_sets
     other = get_corpus(small_config(seed=99), SEQ_LEN, tmp_path / "b")
@@ -110,7 +112,7 @@ def test_ids_decode_back_to_the_documents(corpus):
     starts = list(np.flatnonzero(corpus.train_ids == DOC_START_ID)) + [len(corpus.train_ids)]
     docs = corpus.documents("train")
     for i in range(0, len(docs), 37):
-        assert corpus.decode(corpus.train_ids[starts[i] + 1:starts[i + 1]]) == docs[i]
+        assert corpus.decode(corpus.train_ids[starts[i] + 1 : starts[i + 1]]) == docs[i]
 
 
 def test_text_uses_only_words_known_to_the_vocabulary_check(corpus):
@@ -139,10 +141,18 @@ def _split_item(corpus, item):
 
 def test_retrieval_grid_is_complete(corpus):
     p = corpus.config["probes"]["retrieval"]
-    cells = Counter((it["meta"]["context_len"], it["meta"]["depth"], it["meta"]["n_needles"], it["meta"]["n_asked"])
-                    for it in corpus.probe_sets["retrieval"])
-    expected = {(L, float(d), n, r) for L in p["context_lens"] for d in p["depths"] for n in p["n_needles"]
-                for r in p["n_asked"] if r <= n}
+    cells = Counter(
+        (it["meta"]["context_len"], it["meta"]["depth"], it["meta"]["n_needles"], it["meta"]["n_asked"])
+        for it in corpus.probe_sets["retrieval"]
+    )
+    expected = {
+        (L, float(d), n, r)
+        for L in p["context_lens"]
+        for d in p["depths"]
+        for n in p["n_needles"]
+        for r in p["n_asked"]
+        if r <= n
+    }
     assert set(cells) == expected and set(cells.values()) == {p["items_per_cell"]}
 
 
@@ -153,7 +163,9 @@ def test_retrieval_answers_are_in_context_and_unique(corpus):
         asked = QUESTION.findall(questions)
         assert len(asked) == item["meta"]["n_asked"] == len(item["answer_spans"])
         meta = item["meta"]
-        assert len(facts) == meta["n_needles"] + len(item["distractor_spans"]) - (meta["n_needles"] - meta["n_asked"])
+        assert len(facts) == meta["n_needles"] + len(item["distractor_spans"]) - (
+            meta["n_needles"] - meta["n_asked"]
+        )
         for attr, isle, value in asked:
             matching = [f for f in facts if (f[0], f[1]) == (attr, isle)]
             assert len(matching) == 1, (attr, isle, text)
@@ -164,13 +176,13 @@ def test_retrieval_answers_are_in_context_and_unique(corpus):
 def test_retrieval_spans_decode_to_what_they_claim(corpus):
     for item in corpus.probe_sets["retrieval"]:
         toks = item["tokens"]
-        dec = lambda span: corpus.decode(toks[span[0]:span[1]])  # noqa: E731
+        dec = lambda span: corpus.decode(toks[span[0] : span[1]])  # noqa: E731, B023
         asked_keys = []
-        for (a, b) in zip(item["asked_spans"], item["answer_spans"]):
+        for a, b in zip(item["asked_spans"], item["answer_spans"]):
             attr, isle, value = dec(a).split(" ", 2)
             assert attr in FACT_ATTRIBUTES and value.replace(" ", "").isdigit()
             assert dec(b) == value
-            assert corpus.decode(toks[:b[0]]).endswith(f" check {attr} {isle}")
+            assert corpus.decode(toks[: b[0]]).endswith(f" check {attr} {isle}")
             asked_keys.append((attr, isle))
         for span in item["distractor_spans"]:
             attr, isle, value = dec(span).split(" ", 2)
@@ -206,8 +218,10 @@ def test_retrieval_needle_sits_at_its_depth(corpus):
         if depth == 0.0:
             assert corpus.decode(toks[:first_asked]).endswith("light , codes .")
         if depth == 1.0:
-            between = corpus.decode(toks[last_asked_end:item["answer_spans"][0][0]])
-            assert between.startswith(". check ") and len(between.split()) == 4, between  # ". check <attr> <isle>"
+            between = corpus.decode(toks[last_asked_end : item["answer_spans"][0][0]])
+            assert between.startswith(". check ") and len(between.split()) == 4, (
+                between
+            )  # ". check <attr> <isle>"
         rel.setdefault(depth, []).append(len(corpus.decode(toks[:first_asked])) / first_question)
     means = [np.mean(rel[d]) for d in sorted(rel)]
     assert all(a < b for a, b in zip(means, means[1:])), means
@@ -228,7 +242,7 @@ def test_probe_items_never_appear_in_training_text(corpus):
         # a stretch of 12 words from the middle of the item is already unique content
         words = body.split(" ")
         mid = len(words) // 2
-        assert " ".join(words[mid:mid + 12]) not in train
+        assert " ".join(words[mid : mid + 12]) not in train
 
 
 # ----------------------------------------------------------------------------- probes: classification
@@ -257,10 +271,12 @@ def test_classification_orderings_share_demonstrations_and_grouped_is_grouped(co
     p = corpus.config["probes"]["classification"]
     assert len(by_episode) == len(p["n_classes"]) * len(p["n_demos"]) * p["episodes"]
     for items in by_episode.values():
-        assert [it["meta"]["ordering"] for it in items] == ["random"] * p["random_orders"] + ["grouped"] * p["grouped_orders"]
+        assert [it["meta"]["ordering"] for it in items] == ["random"] * p["random_orders"] + ["grouped"] * p[
+            "grouped_orders"
+        ]
         labels = [sorted(corpus.decode(it["tokens"][s:e]) for s, e in it["demo_label_spans"]) for it in items]
         assert all(lab == labels[0] for lab in labels)
-        queries = [corpus.decode(it["tokens"][it["answer_spans"][0][0]:]) for it in items]
+        queries = [corpus.decode(it["tokens"][it["answer_spans"][0][0] :]) for it in items]
         assert all(q == queries[0] for q in queries)
         for it in items:
             if it["meta"]["ordering"] == "grouped":
@@ -317,20 +333,26 @@ def test_windows_reject_impossible_requests(corpus):
 
 
 # ----------------------------------------------------------------------------- bad input
-@pytest.mark.parametrize("changes, key", [
-    ({"mixture": {"narrative": 1.0, "poems": 1.0}}, "data.mixture: unknown document kind 'poems'"),
-    ({"mixture": {"narrative": 0.0, "facts": 0.0}}, "data.mixture: weights sum to 0.0"),
-    ({"mixture": {"narrative": -1.0, "facts": 0.5}}, "data.mixture.narrative=-1.0"),
-    ({"vocab_size": 20}, "data.vocab_size=20"),
-    ({"vocab_size": 60000}, "data.vocab_size=60000"),
-    ({"probes.retrieval.context_lens": [96, 300]}, "data.probes.retrieval.context_lens: 300"),
-    ({"tokenizer.model_type": "words"}, "data.tokenizer.model_type='words'"),
-    ({"facts.n_facts": [5, 2]}, "data.facts.n_facts=[5, 2]"),
-    ({"facts.layout": "sideways"}, "data.facts.layout='sideways'"),
-    ({"facts.mentions": [0, 2]}, "data.facts.mentions=[0, 2]"),
-    ({"copy.distinct": "yes"}, "data.copy.distinct='yes'"),
-    ({"copy.distinct": True, "copy.words": [8, 500]}, "data.copy.words=[8, 500]: with copy.distinct=true"),
-])
+@pytest.mark.parametrize(
+    "changes, key",
+    [
+        ({"mixture": {"narrative": 1.0, "poems": 1.0}}, "data.mixture: unknown document kind 'poems'"),
+        ({"mixture": {"narrative": 0.0, "facts": 0.0}}, "data.mixture: weights sum to 0.0"),
+        ({"mixture": {"narrative": -1.0, "facts": 0.5}}, "data.mixture.narrative=-1.0"),
+        ({"vocab_size": 20}, "data.vocab_size=20"),
+        ({"vocab_size": 60000}, "data.vocab_size=60000"),
+        ({"probes.retrieval.context_lens": [96, 300]}, "data.probes.retrieval.context_lens: 300"),
+        ({"tokenizer.model_type": "words"}, "data.tokenizer.model_type='words'"),
+        ({"facts.n_facts": [5, 2]}, "data.facts.n_facts=[5, 2]"),
+        ({"facts.layout": "sideways"}, "data.facts.layout='sideways'"),
+        ({"facts.mentions": [0, 2]}, "data.facts.mentions=[0, 2]"),
+        ({"copy.distinct": "yes"}, "data.copy.distinct='yes'"),
+        (
+            {"copy.distinct": True, "copy.words": [8, 500]},
+            "data.copy.words=[8, 500]: with copy.distinct=true",
+        ),
+    ],
+)
 def test_bad_config_fails_before_generating(tmp_path, changes, key):
     cfg = small_config()
     for k, v in changes.items():
@@ -375,7 +397,11 @@ def test_copy_entries_repeat_their_note_exactly():
 def test_distinct_notes_never_repeat_a_word():
     cfg = small_config(**{"copy.distinct": True, "copy.words": [30, 60]})
     kinds, texts = generate_documents(world_of(cfg), cfg, 300, "train-distinct")
-    notes = [re.fullmatch(r"rough note at \w+ light : (.+) \. fair copy : \1 \.", t) for k, t in zip(kinds, texts) if k == "copy"]
+    notes = [
+        re.fullmatch(r"rough note at \w+ light : (.+) \. fair copy : \1 \.", t)
+        for k, t in zip(kinds, texts)
+        if k == "copy"
+    ]
     assert notes and all(notes)
     for note in notes:
         words = note.group(1).split()
@@ -383,7 +409,11 @@ def test_distinct_notes_never_repeat_a_word():
     # the default (with replacement) does repeat words in notes this long: the knob changes something
     plain = small_config(**{"copy.words": [30, 60]})
     kinds, texts = generate_documents(world_of(plain), plain, 300, "train-distinct")
-    assert any(len(set(t.split(" : ")[1].split())) < len(t.split(" : ")[1].split()) for k, t in zip(kinds, texts) if k == "copy")
+    assert any(
+        len(set(t.split(" : ")[1].split())) < len(t.split(" : ")[1].split())
+        for k, t in zip(kinds, texts)
+        if k == "copy"
+    )
 
 
 def test_fact_mentions_repeat_each_fact_within_range_before_its_question():
@@ -403,10 +433,12 @@ def test_value_first_layout_probes_keep_their_spans(tmp_path):
     c = get_corpus(small_config(**{"facts.layout": "value_first"}), SEQ_LEN, tmp_path)
     for item in c.probe_sets["retrieval"][::5]:
         toks = item["tokens"]
-        for (a, b) in zip(item["asked_spans"], item["answer_spans"]):
-            m = re.fullmatch(r"code (\d(?: \d)*) (lamp|bell|horn|flag) ([A-Z][a-z]+)", c.decode(toks[a[0]:a[1]]))
-            assert m and c.decode(toks[b[0]:b[1]]) == m.group(1)
-            assert c.decode(toks[:b[0]]).endswith(f" check {m.group(2)} {m.group(3)}")
+        for a, b in zip(item["asked_spans"], item["answer_spans"]):
+            m = re.fullmatch(
+                r"code (\d(?: \d)*) (lamp|bell|horn|flag) ([A-Z][a-z]+)", c.decode(toks[a[0] : a[1]])
+            )
+            assert m and c.decode(toks[b[0] : b[1]]) == m.group(1)
+            assert c.decode(toks[: b[0]]).endswith(f" check {m.group(2)} {m.group(3)}")
     assert "code" in c.documents("train")[0] or any(" code " in d for d in c.documents("train")[:50])
 
 
@@ -419,7 +451,9 @@ def test_copy_levels_match_a_simulated_random_copier(corpus):
 
     rng = random.Random(0)
     items = corpus.probe_sets["retrieval"]
-    level = retrieval_summary(items, [[False] * len(it["answer_spans"]) for it in items])["retrieval/copy_level"]
+    level = retrieval_summary(items, [[False] * len(it["answer_spans"]) for it in items])[
+        "retrieval/copy_level"
+    ]
     hits = []
     for _ in range(40):
         for it in items:
@@ -427,12 +461,16 @@ def test_copy_levels_match_a_simulated_random_copier(corpus):
             ok = True
             for s, e in it["answer_spans"]:
                 fs, fe = rng.choice(facts)
-                ok &= it["tokens"][fe - (e - s):fe] == it["tokens"][s:e]  # a fact's value is its last tokens
+                ok &= (
+                    it["tokens"][fe - (e - s) : fe] == it["tokens"][s:e]
+                )  # a fact's value is its last tokens
             hits.append(ok)
     assert abs(np.mean(hits) - level) < 3 * math.sqrt(level * (1 - level) / len(hits))
 
     items = corpus.probe_sets["classification"]
-    level = class_summary(items, [[False] * len(it["answer_spans"]) for it in items])["classification/copy_level"]
+    level = class_summary(items, [[False] * len(it["answer_spans"]) for it in items])[
+        "classification/copy_level"
+    ]
     majority, last, uniform = [], [], []
     for _ in range(40):
         for it in items:

@@ -198,7 +198,7 @@ def blind_guesses(drill: Drill, tokens: np.ndarray, mask: np.ndarray, rng: np.ra
             words = drill.describe(np.asarray(row)).split()
             values = [row[p] for p in range(words.index("|")) if words[p].startswith("v")]
             pools = []
-            for j, t in enumerate(targets):
+            for j, _t in enumerate(targets):
                 round_start = 0 if cfg.query_sampling == "permutation" else j - j % cfg.n_pairs
                 asked = (
                     []

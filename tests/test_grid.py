@@ -2,31 +2,45 @@
 and relaunching a finished grid."""
 
 import csv
-import math
 import subprocess
 import sys
 
 import pytest
+from trainer_helpers import ROOT, SMALL_DATA, run_dirs, summary, train
 
 from ablate.schema import ConfigError
 from ablate.train import preflight
-from trainer_helpers import ROOT, SMALL_DATA, run_dirs, summary, train
 
 SMOKE = ["budget=smoke", "probes=off", *SMALL_DATA]
 
 
 def test_fairness_gate_stops_a_grid_whose_cells_differ():
     with pytest.raises(ConfigError) as err:
-        preflight(["-m", "recipe=quickstart", "model.d_model=128,192", "attention=standard",
-                   "grid.baseline='model.d_model=128'"])
+        preflight(
+            [
+                "-m",
+                "recipe=quickstart",
+                "model.d_model=128,192",
+                "attention=standard",
+                "grid.baseline='model.d_model=128'",
+            ]
+        )
     message = str(err.value)
     assert "grid.tolerance=0.02" in message and "model.d_model=192" in message
     assert "params" in message.splitlines()[1]  # the table follows the one-line verdict
 
 
 def test_fairness_gate_lets_a_declared_unequal_axis_through():
-    grid = preflight(["-m", "recipe=quickstart", "model.d_model=128,192", "attention=standard",
-                      "grid.unequal_axes=[model.d_model]", "grid.baseline='model.d_model=128'"])
+    grid = preflight(
+        [
+            "-m",
+            "recipe=quickstart",
+            "model.d_model=128,192",
+            "attention=standard",
+            "grid.unequal_axes=[model.d_model]",
+            "grid.baseline='model.d_model=128'",
+        ]
+    )
     ratios = {row["cell"]: row["params_ratio"] for row in grid.fairness}
     assert len(ratios) == 2 and max(ratios.values()) > 1.5
 
@@ -34,14 +48,19 @@ def test_fairness_gate_lets_a_declared_unequal_axis_through():
 def test_differential_and_standard_pass_the_gate_with_their_table():
     grid = preflight(["-m", "recipe=quickstart"])
     rows = {row["cell"]: row for row in grid.fairness}
-    assert grid.baseline == "attention=standard" and grid.jobs == 4
+    assert grid.baseline == "attention=standard" and grid.jobs == 8  # 2 designs x 4 seeds
     assert abs(rows["attention=differential"]["params_ratio"] - 1) < 0.02
     assert rows["attention=differential"]["flops_ratio"] > 1.0
 
 
 def report(grid_dir):
-    return subprocess.run([sys.executable, "-m", "ablate.report", str(grid_dir)], capture_output=True, text=True,
-                          cwd=ROOT, timeout=300)
+    return subprocess.run(
+        [sys.executable, "-m", "ablate.report", str(grid_dir)],
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+        timeout=300,
+    )
 
 
 @pytest.mark.e2e
@@ -71,14 +90,27 @@ def test_a_a_grid_reports_a_difference_whose_interval_covers_zero(tmp_path, cach
     conf = tmp_path / "extra" / "attention"
     conf.mkdir(parents=True)
     conf.joinpath("standard_copy.yaml").write_text((ROOT / "conf/attention/standard.yaml").read_text())
-    proc = train(["-m", "recipe=quickstart", *SMOKE, "attention=standard,standard_copy", "seed=0,1,2",
-                  f"hydra.searchpath=[file://{tmp_path / 'extra'}]"], tmp_path / "runs", cache)
+    proc = train(
+        [
+            "-m",
+            "recipe=quickstart",
+            *SMOKE,
+            "attention=standard,standard_copy",
+            "seed=0,1,2",
+            f"hydra.searchpath=[file://{tmp_path / 'extra'}]",
+        ],
+        tmp_path / "runs",
+        cache,
+    )
     assert proc.returncode == 0, proc.stderr[-3000:]
     grid_dir = tmp_path / "runs" / "quickstart"
     out = report(grid_dir)
     assert out.returncode == 0, out.stderr[-2000:]
-    rows = [r for r in csv.DictReader((grid_dir / "summary.csv").open())
-            if "standard_copy" in r["cell"] and r["metric"] == "final_val_loss"]
+    rows = [
+        r
+        for r in csv.DictReader((grid_dir / "summary.csv").open())
+        if "standard_copy" in r["cell"] and r["metric"] == "final_val_loss"
+    ]
     assert len(rows) == 1
     row = rows[0]
     assert int(row["n"]) == 3

@@ -27,8 +27,9 @@ def h2h(args, cache, cwd, module="ablate.train", extra_env=None, popen=False, ti
     env.update(extra_env or {})
     cmd = [sys.executable, "-m", module, *args]
     if popen:
-        return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
-                                cwd=cwd)
+        return subprocess.Popen(
+            cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=cwd
+        )
     return subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, env=env, cwd=cwd)
 
 
@@ -44,8 +45,15 @@ def test_grid_with_sweep_dir_writes_its_record_there_and_nowhere_else(tmp_path, 
     demo.parent.mkdir(parents=True)
     demo.write_bytes(b'{"name": "quickstart", "note": "the demo grid"}\n')
     before = demo.read_bytes()
-    args = ["-m", "recipe=quickstart", *FAST, "budget.tokens=4096", "hydra.sweeper.params.seed=0",
-            f"run_root={runs}", "hydra.sweep.dir=../elsewhere"]
+    args = [
+        "-m",
+        "recipe=quickstart",
+        *FAST,
+        "budget.tokens=4096",
+        "hydra.sweeper.params.seed=0",
+        f"run_root={runs}",
+        "hydra.sweep.dir=../elsewhere",
+    ]
     proc = h2h(args, cache, cwd)
     assert proc.returncode == 0, proc.stderr[-3000:]
     elsewhere = tmp_path / "elsewhere"  # relative to the current folder, as Hydra takes it
@@ -86,8 +94,9 @@ with folder_lock(sys.argv[1]):
 
 
 def hold_in_child(folder):
-    child = subprocess.Popen([sys.executable, "-c", HOLD, str(folder)], stdout=subprocess.PIPE, text=True,
-                             cwd=ROOT)
+    child = subprocess.Popen(
+        [sys.executable, "-c", HOLD, str(folder)], stdout=subprocess.PIPE, text=True, cwd=ROOT
+    )
     assert child.stdout.readline().strip() == "held"
     return child
 
@@ -142,7 +151,7 @@ def test_two_concurrent_launches_of_one_run_train_once_and_refuse_once(tmp_path,
     codes = sorted(rc for rc, _, _ in results.values())
     assert codes == [0, 2], {pid: (rc, err[-1500:]) for pid, (rc, _, err) in results.items()}
     (winner,) = [pid for pid, (rc, _, _) in results.items() if rc == 0]
-    (_, _, refused_err), = [r for r in results.values() if r[0] == 2]
+    ((_, _, refused_err),) = [r for r in results.values() if r[0] == 2]
     (line,) = stderr_lines(refused_err)
     assert f"in use by pid {winner} on " in line and " since " in line
     (run_dir,) = run_dirs(tmp_path)
@@ -165,7 +174,13 @@ def cell_folder(args):
 def test_grid_skips_a_cell_held_elsewhere_and_lists_it(tmp_path, cache):
     from ablate.records import read_grid
 
-    common = [*FAST, "budget.tokens=2048", "grid.name=g", "grid.baseline='attention=standard'", f"run_root={tmp_path}"]
+    common = [
+        *FAST,
+        "budget.tokens=2048",
+        "grid.name=g",
+        "grid.baseline='attention=standard'",
+        f"run_root={tmp_path}",
+    ]
     args = ["-m", *common, "attention=standard,differential"]
     held = cell_folder([*common, "attention=standard"])
     assert held.parent == tmp_path / "g"
@@ -192,8 +207,18 @@ def tiny_data() -> dict:
     return cfg
 
 
-CACHE_FILES = ["tokenizer.model", "train_ids.npy", "val_ids.npy", "train.txt", "val.txt", "train_kinds.txt",
-               "probes.json", "data_config.json", "stats.json", "manifest.json"]
+CACHE_FILES = [
+    "tokenizer.model",
+    "train_ids.npy",
+    "val_ids.npy",
+    "train.txt",
+    "val.txt",
+    "train_kinds.txt",
+    "probes.json",
+    "data_config.json",
+    "stats.json",
+    "manifest.json",
+]
 
 
 @pytest.fixture(scope="module")
@@ -270,8 +295,10 @@ def test_h2h_corpus_checks_hashes_and_rebuilds_a_changed_text_file(built, tmp_pa
     proc = h2h(args, tmp_path, ROOT, module="toy_corpus.cli", timeout=120)
     assert proc.returncode == 0, proc.stderr
     (line,) = stderr_lines(proc.stderr)
-    assert line == (f"corpus cache {folder}: train.txt has other content than the manifest records "
-                    "(SHA-256 differs); rebuilding it")
+    assert line == (
+        f"corpus cache {folder}: train.txt has other content than the manifest records "
+        "(SHA-256 differs); rebuilding it"
+    )
     assert (folder / "train.txt").read_bytes() == text
 
 
@@ -300,9 +327,11 @@ def test_runlog_lines_are_timestamped_and_appended_across_two_writers(tmp_path):
     first.line("eval", step=8, tokens=8192, val_loss=5.475123456789)
     first.line("diverged", step=9, loss=float("nan"), grad_norm=float("inf"), last_finite_loss=5.4)
     # a second writer in another process, as a resumed run would be
-    code = ("import sys; from ablate.runlog import RunLog; "
-            "RunLog(sys.argv[1]).line('resume', step=8, note='from the last checkpoint', "
-            "extra={'a': [1, 2]})")
+    code = (
+        "import sys; from ablate.runlog import RunLog; "
+        "RunLog(sys.argv[1]).line('resume', step=8, note='from the last checkpoint', "
+        "extra={'a': [1, 2]})"
+    )
     subprocess.run([sys.executable, "-c", code, str(tmp_path)], check=True, cwd=ROOT)
     t1 = datetime.datetime.now().astimezone()
     raw = (tmp_path / "train.log").read_text().splitlines()
@@ -372,11 +401,16 @@ def _fail_call(name):
 
         owner = tempfile if name == "mkstemp" else os
         monkeypatch.setattr(owner, name, enospc)
+
     return patch
 
 
-WRITE_STEPS = {"mkstemp": _fail_call("mkstemp"), "write": _fail_write, "fsync": _fail_call("fsync"),
-               "replace": _fail_call("replace")}
+WRITE_STEPS = {
+    "mkstemp": _fail_call("mkstemp"),
+    "write": _fail_write,
+    "fsync": _fail_call("fsync"),
+    "replace": _fail_call("replace"),
+}
 
 
 @pytest.mark.parametrize("step", WRITE_STEPS)
@@ -449,8 +483,14 @@ def test_a_real_full_filesystem_keeps_the_old_file(tmp_path):
     mnt = tmp_path / "tiny"
     mnt.mkdir()
     script = f"mount -t tmpfs -o size=64k tmpfs {mnt} && exec {sys.executable} -c '{FULL_DISK}' {mnt}"
-    proc = subprocess.run(["unshare", "-rm", "sh", "-c", script], capture_output=True, text=True, cwd=ROOT,
-                          env=dict(os.environ, PYTHONPATH=str(ROOT)), timeout=60)
+    proc = subprocess.run(
+        ["unshare", "-rm", "sh", "-c", script],
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+        env=dict(os.environ, PYTHONPATH=str(ROOT)),
+        timeout=60,
+    )
     if proc.returncode != 0 and ("mount" in proc.stderr or "unshare" in proc.stderr):
         pytest.skip(f"cannot mount a tmpfs here: {stderr_lines(proc.stderr)[-1]}")
     assert proc.returncode == 0, proc.stderr
@@ -489,8 +529,10 @@ def test_full_disk_at_a_checkpoint_ends_the_run_in_one_line_and_keeps_the_last_o
     assert proc.returncode == 1, proc.stderr[-2000:]
     (line,) = stderr_lines(proc.stderr)
     run_dir = next((tmp_path / "runs").rglob("checkpoint.pt")).parent
-    assert line == (f"h2h-train: error: {run_dir}/checkpoint.pt: could not write ({ENOSPC_TEXT}); "
-                    "the previous file is unchanged")
+    assert line == (
+        f"h2h-train: error: {run_dir}/checkpoint.pt: could not write ({ENOSPC_TEXT}); "
+        "the previous file is unchanged"
+    )
     # torch.load weights_only=True: tensors and plain containers only (torch.load docs)
     assert torch.load(run_dir / "checkpoint.pt", map_location="cpu", weights_only=True)["step"] == 2
     assert not list(run_dir.glob(".*.partial")) and not (run_dir / "summary.json").exists()

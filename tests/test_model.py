@@ -13,7 +13,9 @@ VOCAB = 512
 
 
 def make(cls=StandardAttention, **kw):
-    return Decoder(VOCAB, 128, 4, 64, lambda i: cls(d_model=128, layer_index=i, n_layers=4, head_dim=32), **kw)
+    return Decoder(
+        VOCAB, 128, 4, 64, lambda i: cls(d_model=128, layer_index=i, n_layers=4, head_dim=32), **kw
+    )
 
 
 def test_block_norms_match_the_published_formula():
@@ -79,9 +81,17 @@ def test_same_seed_same_model():
     assert all(torch.equal(p, q) for p, q in zip(a.parameters(), b.parameters()))
 
 
-@pytest.mark.parametrize("kw, word", [(dict(vocab_size=0), "vocab_size=0"), (dict(n_layers=-1), "n_layers=-1")])
+@pytest.mark.parametrize(
+    "kw, word", [(dict(vocab_size=0), "vocab_size=0"), (dict(n_layers=-1), "n_layers=-1")]
+)
 def test_bad_sizes_raise(kw, word):
-    args = dict(vocab_size=VOCAB, d_model=128, n_layers=2, seq_len=16, attention_factory=lambda i: StandardAttention(128, i, 2))
+    args = dict(
+        vocab_size=VOCAB,
+        d_model=128,
+        n_layers=2,
+        seq_len=16,
+        attention_factory=lambda i: StandardAttention(128, i, 2),
+    )
     args.update(kw)
     with pytest.raises(ValueError, match=word):
         Decoder(**args)

@@ -2,11 +2,11 @@
 
 import pytest
 import torch
+from conftest import NAMED_ATTENTION
 from hydra.utils import instantiate
 
 from ablate.attention import AttentionBlock, check_block
 from ablate.config import build_model, compose
-from conftest import NAMED_ATTENTION
 
 
 @pytest.mark.parametrize("attention", NAMED_ATTENTION)
@@ -24,10 +24,14 @@ def test_named_choice_builds_and_runs(attention):
 
 
 def test_choice_options_reach_the_block():
-    cfg = compose(["attention=differential", "attention.head_norm=false", "attention.lambda_init=0.5", "~data"])
+    cfg = compose(
+        ["attention=differential", "attention.head_norm=false", "attention.lambda_init=0.5", "~data"]
+    )
     block = instantiate(cfg.attention, d_model=128, layer_index=3, n_layers=4)
     assert block.use_head_norm is False and block.lambda_init == 0.5
-    wide = instantiate(compose(["attention=standard_wide_heads", "~data"]).attention, d_model=128, layer_index=0, n_layers=4)
+    wide = instantiate(
+        compose(["attention=standard_wide_heads", "~data"]).attention, d_model=128, layer_index=0, n_layers=4
+    )
     assert wide.head_dim == 64 and wide.n_heads == 2
 
 
@@ -51,6 +55,8 @@ def test_a_block_without_the_contract_is_named_in_one_line():
         def forward(self, x):
             return x
 
-    with pytest.raises(TypeError, match="lacks q_proj, k_proj, v_proj, out_proj, attention_weights, attention_logits"):
+    with pytest.raises(
+        TypeError, match="lacks q_proj, k_proj, v_proj, out_proj, attention_weights, attention_logits"
+    ):
         check_block(Bare())
     assert not isinstance(Bare(), AttentionBlock)

@@ -11,7 +11,9 @@ DOC_START = 1
 STOP = 2  # the "." after every fact and answer
 
 
-def retrieval_item(rng: random.Random, vocab: int, context_len: int, depth: float, n_needles: int, n_asked: int) -> dict:
+def retrieval_item(
+    rng: random.Random, vocab: int, context_len: int, depth: float, n_needles: int, n_asked: int
+) -> dict:
     """A copy task: needles are ``key key value value`` spans in random filler; each question
     repeats an asked needle's two key tokens and is answered by its two value tokens.
     One near miss (an unasked needle) is always added, so every item has a distractor span."""
@@ -45,21 +47,40 @@ def retrieval_item(rng: random.Random, vocab: int, context_len: int, depth: floa
         "answer_spans": answers,
         "asked_spans": [spans[i] for i in asked],
         "distractor_spans": [spans[i] for i in range(len(needles)) if i not in asked],
-        "meta": {"context_len": context_len, "depth": float(depth), "n_needles": n_needles, "n_asked": n_asked},
+        "meta": {
+            "context_len": context_len,
+            "depth": float(depth),
+            "n_needles": n_needles,
+            "n_asked": n_asked,
+        },
     }
 
 
-def retrieval_set(vocab: int, context_lens, depths, n_needles, n_asked, per_cell: int = 1, seed: int = 0) -> list[dict]:
+def retrieval_set(
+    vocab: int, context_lens, depths, n_needles, n_asked, per_cell: int = 1, seed: int = 0
+) -> list[dict]:
     rng = random.Random(seed)
     return [
         retrieval_item(rng, vocab, L, d, n, r)
-        for L in context_lens for d in depths for n in n_needles for r in n_asked if r <= n
+        for L in context_lens
+        for d in depths
+        for n in n_needles
+        for r in n_asked
+        if r <= n
         for _ in range(per_cell)
     ]
 
 
-def classification_set(vocab: int, n_classes_list, per_class_list, episodes: int = 2, random_orders: int = 2,
-                       grouped_orders: int = 1, queries: int = 3, seed: int = 0) -> list[dict]:
+def classification_set(
+    vocab: int,
+    n_classes_list,
+    per_class_list,
+    episodes: int = 2,
+    random_orders: int = 2,
+    grouped_orders: int = 1,
+    queries: int = 3,
+    seed: int = 0,
+) -> list[dict]:
     """Episodes of ``feature feature label .`` demonstrations, then queries answered by a label."""
     rng = random.Random(seed)
     items = []
@@ -67,8 +88,15 @@ def classification_set(vocab: int, n_classes_list, per_class_list, episodes: int
         for per_class in per_class_list:
             for e in range(episodes):
                 labels = rng.sample(range(3, vocab), C)
-                demos = [(c, [rng.randrange(3, vocab), rng.randrange(3, vocab)]) for c in range(C) for _ in range(per_class)]
-                qs = [(c, [rng.randrange(3, vocab), rng.randrange(3, vocab)]) for c in rng.choices(range(C), k=queries)]
+                demos = [
+                    (c, [rng.randrange(3, vocab), rng.randrange(3, vocab)])
+                    for c in range(C)
+                    for _ in range(per_class)
+                ]
+                qs = [
+                    (c, [rng.randrange(3, vocab), rng.randrange(3, vocab)])
+                    for c in rng.choices(range(C), k=queries)
+                ]
                 orders = ["random"] * random_orders + ["grouped"] * grouped_orders
                 for order_index, ordering in enumerate(orders):
                     shown = list(demos)
@@ -81,9 +109,19 @@ def classification_set(vocab: int, n_classes_list, per_class_list, episodes: int
                         tokens += feats
                         answers.append([len(tokens), len(tokens) + 1])
                         tokens += [labels[c], STOP]
-                    items.append({"tokens": tokens, "answer_spans": answers,
-                                  "meta": {"n_classes": C, "n_demos": C * per_class, "ordering": ordering,
-                                           "episode": e, "order_index": order_index}})
+                    items.append(
+                        {
+                            "tokens": tokens,
+                            "answer_spans": answers,
+                            "meta": {
+                                "n_classes": C,
+                                "n_demos": C * per_class,
+                                "ordering": ordering,
+                                "episode": e,
+                                "order_index": order_index,
+                            },
+                        }
+                    )
     return items
 
 

@@ -10,21 +10,21 @@ import numpy as np
 import pytest
 import torch
 from omegaconf import OmegaConf
+from test_probes_items import DOC_START, classification_set, retrieval_set
 
 from ablate.attention import DifferentialAttention, StandardAttention
 from ablate.config import compose
 from ablate.model import Decoder
 from ablate.probes import PROBE_NAMES, check_config, run_probes
 from ablate.probes.pictures import picture_items
-from test_probes_items import DOC_START, classification_set, retrieval_set
 
 VOCAB, SEQ_LEN = 64, 64
-
 
 
 def probes_group(name: str) -> dict:
     """The probes group as Hydra composes it (schema defaults applied)."""
     return OmegaConf.to_container(compose([f"probes={name}", "~data"]).probes, resolve=True)
+
 
 def corpus():
     rng = np.random.default_rng(0)
@@ -56,15 +56,36 @@ def test_every_probe_key_is_produced_and_finite(block):
     numbers, images = run_probes(model, corpus(), cfg)
     assert model.training  # mode restored
     assert all(isinstance(v, float) and math.isfinite(v) for v in numbers.values())
-    expected = {"retrieval/acc", "retrieval/answer_acc", "retrieval/acc_len65_depth0.5", "retrieval/acc_depth1",
-                "retrieval/acc_len40_depth0_n2_r2", "classification/acc", "classification/acc_classes3_demos6",
-                "classification/order_std_random", "classification/order_range_all", "position/loss",
-                "position/loss_pos0_16", "position/loss_pos48_64", "quantization/loss_fp32", "quantization/increase_w4",
-                "quantization/increase_a8", "attention/n_items", "probe_seconds/total", "probe_seconds/images"}
+    expected = {
+        "retrieval/acc",
+        "retrieval/answer_acc",
+        "retrieval/acc_len65_depth0.5",
+        "retrieval/acc_depth1",
+        "retrieval/acc_len40_depth0_n2_r2",
+        "classification/acc",
+        "classification/acc_classes3_demos6",
+        "classification/order_std_random",
+        "classification/order_range_all",
+        "position/loss",
+        "position/loss_pos0_16",
+        "position/loss_pos48_64",
+        "quantization/loss_fp32",
+        "quantization/increase_w4",
+        "quantization/increase_a8",
+        "attention/n_items",
+        "probe_seconds/total",
+        "probe_seconds/images",
+    }
     for layer in range(2):
         for k in ("asked_share", "distractor_share", "other_share"):
             expected.add(f"attention/layer{layer}/{k}")
-        for k in ("logit_top1_ratio", "logit_top10_ratio", "hidden_top1_ratio", "hidden_top10_ratio", "hidden_kurtosis"):
+        for k in (
+            "logit_top1_ratio",
+            "logit_top10_ratio",
+            "hidden_top1_ratio",
+            "hidden_top10_ratio",
+            "hidden_kurtosis",
+        ):
             expected.add(f"outliers/layer{layer}/{k}")
     expected |= {f"probe_seconds/{n}" for n in PROBE_NAMES}
     assert expected <= set(numbers), sorted(expected - set(numbers))

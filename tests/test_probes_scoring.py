@@ -12,12 +12,12 @@ import statistics
 
 import pytest
 import torch
+from test_probes_items import classification_set, retrieval_set
 from torch import nn
 
 from ablate.probes.classification import classification_probe, order_spread
 from ablate.probes.common import length_batches, spans_correct
 from ablate.probes.retrieval import retrieval_probe
-from test_probes_items import classification_set, retrieval_set
 
 VOCAB = 50
 
@@ -46,7 +46,7 @@ class Table(nn.Module):
         self.rows = {}
         for k, it in enumerate(items):
             target = list(it["tokens"][1:])
-            for (i, p) in wrong:
+            for i, p in wrong:
                 if i == k:
                     target[p] = (target[p] + 1) % vocab
             self.rows[tuple(it["tokens"][:-1])] = target
@@ -68,7 +68,9 @@ def retrieval_items():
 
 @pytest.fixture(scope="module")
 def class_items():
-    return classification_set(VOCAB, [2, 3], [1, 2], episodes=2, random_orders=2, grouped_orders=1, queries=3, seed=2)
+    return classification_set(
+        VOCAB, [2, 3], [1, 2], episodes=2, random_orders=2, grouped_orders=1, queries=3, seed=2
+    )
 
 
 def test_spans_correct_needs_every_token_of_the_span():
@@ -111,13 +113,21 @@ def test_retrieval_keys_cover_every_cell_and_margin(retrieval_items):
             assert f"retrieval/acc_len{L}_depth{D}" in out
             for n, r in ((1, 1), (2, 1), (2, 2)):
                 assert f"retrieval/acc_len{L}_depth{D}_n{n}_r{r}" in out
-    assert {"retrieval/acc_depth0", "retrieval/acc_depth0.5", "retrieval/acc_n1", "retrieval/acc_n2",
-            "retrieval/acc_r1", "retrieval/acc_r2"} <= set(out)
+    assert {
+        "retrieval/acc_depth0",
+        "retrieval/acc_depth0.5",
+        "retrieval/acc_n1",
+        "retrieval/acc_n2",
+        "retrieval/acc_r1",
+        "retrieval/acc_r2",
+    } <= set(out)
     assert "retrieval/acc_len40_depth0.5_n1_r2" not in out  # no such cell in the set
 
 
 def test_retrieval_item_needs_all_spans_and_each_token(retrieval_items):
-    assert len({tuple(it["tokens"]) for it in retrieval_items}) == len(retrieval_items)  # Table needs distinct items
+    assert len({tuple(it["tokens"]) for it in retrieval_items}) == len(
+        retrieval_items
+    )  # Table needs distinct items
     # Break the second token of the last answer of every two-question item, and a filler position
     # of every other item: only the two-question items fail, and half of their spans stay right.
     wrong = set()
@@ -142,8 +152,12 @@ def test_classification_oracle_and_wrong_model(class_items):
     right = classification_probe(CopyNext(VOCAB), class_items, batch_tokens=256)
     wrong = classification_probe(CopyNext(VOCAB, shift=1), class_items, batch_tokens=256)
     acc_keys = [k for k in right if "/acc" in k]
-    assert {"classification/acc_classes2_demos2", "classification/acc_classes3_demos6",
-            "classification/acc_random", "classification/acc_grouped"} <= set(acc_keys)
+    assert {
+        "classification/acc_classes2_demos2",
+        "classification/acc_classes3_demos6",
+        "classification/acc_random",
+        "classification/acc_grouped",
+    } <= set(acc_keys)
     assert all(right[k] == 1.0 for k in acc_keys)
     assert all(wrong[k] == 0.0 for k in acc_keys)
     assert right["classification/order_std_random"] == 0.0 and right["classification/order_range_all"] == 0.0
@@ -151,12 +165,18 @@ def test_classification_oracle_and_wrong_model(class_items):
 
 
 def test_classification_order_spread_matches_stdlib():
-    class_items = classification_set(VOCAB, [3, 4], [2], episodes=2, random_orders=2, grouped_orders=1, queries=3, seed=2)
+    class_items = classification_set(
+        VOCAB, [3, 4], [2], episodes=2, random_orders=2, grouped_orders=1, queries=3, seed=2
+    )
     assert len({tuple(it["tokens"]) for it in class_items}) == len(class_items)  # Table needs distinct items
     # Wrong on every query of the first random ordering only: per episode, random orderings score
     # [0, 1] and all orderings [0, 1, 1].
-    wrong = {(k, s - 1) for k, it in enumerate(class_items) if it["meta"]["order_index"] == 0
-             for s, _e in it["answer_spans"]}
+    wrong = {
+        (k, s - 1)
+        for k, it in enumerate(class_items)
+        if it["meta"]["order_index"] == 0
+        for s, _e in it["answer_spans"]
+    }
     out = classification_probe(Table(class_items, VOCAB, wrong), class_items, batch_tokens=256)
     # Reference: Python's statistics.stdev (sample standard deviation, n - 1).
     assert out["classification/order_std_random"] == pytest.approx(statistics.stdev([0.0, 1.0]))

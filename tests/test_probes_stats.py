@@ -7,14 +7,19 @@ import numpy as np
 import pytest
 import scipy.stats
 import torch
+from test_probes_items import retrieval_set
 
 from ablate.attention import DifferentialAttention, StandardAttention
 from ablate.model import Decoder
 from ablate.probes.attention import allocation_summary, attention_probe, span_shares
 from ablate.probes.outliers import causal_entries, excess_kurtosis, magnitude_stats, outlier_probe
 from ablate.probes.position import bucket_means, position_probe
-from ablate.probes.quantization import fake_quantize_rows, fake_quantize_tensor, quantization_probe, weight_quantized_copy
-from test_probes_items import retrieval_set
+from ablate.probes.quantization import (
+    fake_quantize_rows,
+    fake_quantize_tensor,
+    quantization_probe,
+    weight_quantized_copy,
+)
 
 # ----------------------------------------------------------------------------- attention shares
 
@@ -80,7 +85,13 @@ class LookAtKey3(StandardAttention):
 
 
 def tiny_decoder(block=StandardAttention, vocab=50, d_model=32, n_layers=2, seq_len=64):
-    return Decoder(vocab, d_model, n_layers, seq_len, lambda i: block(d_model, layer_index=i, n_layers=n_layers, head_dim=8))
+    return Decoder(
+        vocab,
+        d_model,
+        n_layers,
+        seq_len,
+        lambda i: block(d_model, layer_index=i, n_layers=n_layers, head_dim=8),
+    )
 
 
 def test_attention_probe_reads_the_query_row_through_the_hooks():
@@ -172,18 +183,23 @@ def test_outlier_probe_hidden_stats_match_a_manual_forward():
     out = outlier_probe(model, windows, batch_tokens=128)
     with torch.no_grad():  # reference: blocks run one by one, outputs checked with numpy/scipy
         h = model.embed(torch.as_tensor(windows[:, :-1]))
+        prev = h  # the residual stream entering each block
         for layer, block in enumerate(model.blocks):
             h = block(h)
             x = h.reshape(-1).double().numpy()
             a = np.abs(x)
             assert out[f"outliers/layer{layer}/hidden_max_abs"] == pytest.approx(a.max(), rel=1e-5)
-            assert out[f"outliers/layer{layer}/hidden_top1_ratio"] == pytest.approx(a.max() / np.median(a), rel=1e-4)
-            assert out[f"outliers/layer{layer}/hidden_kurtosis"] == pytest.approx(scipy.stats.kurtosis(x), rel=1e-4)
-            logits = block.attention.attention_logits(block.attn_norm(model.embed(torch.as_tensor(windows[:, :-1]))
-                                                                      if layer == 0 else prev))
+            assert out[f"outliers/layer{layer}/hidden_top1_ratio"] == pytest.approx(
+                a.max() / np.median(a), rel=1e-4
+            )
+            assert out[f"outliers/layer{layer}/hidden_kurtosis"] == pytest.approx(
+                scipy.stats.kurtosis(x), rel=1e-4
+            )
+            logits = block.attention.attention_logits(block.attn_norm(prev))
             causal = np.abs(causal_entries(logits).double().numpy())
             assert out[f"outliers/layer{layer}/logit_top10_ratio"] == pytest.approx(
-                np.sort(causal)[::-1][:10].mean() / np.median(causal), rel=1e-4)
+                np.sort(causal)[::-1][:10].mean() / np.median(causal), rel=1e-4
+            )
             prev = h
 
 
@@ -205,11 +221,15 @@ def test_int8_per_channel_round_trip_is_within_half_a_step():
     w = torch.randn(16, 40) * torch.linspace(0.01, 3.0, 16)[:, None]
     q = fake_quantize_rows(w, 8)
     scale = w.abs().amax(dim=1, keepdim=True) / 127
-    assert torch.all((q - w).abs() <= scale / 2 + 1e-6)  # round-to-nearest error bound, common practice, no source
+    assert torch.all(
+        (q - w).abs() <= scale / 2 + 1e-6
+    )  # round-to-nearest error bound, common practice, no source
     steps = q / scale
     assert torch.allclose(steps, steps.round(), atol=1e-4) and steps.abs().max() <= 127 + 1e-4
     # Reference: torch.fake_quantize_per_channel_affine (symmetric: zero point 0, range -127..127).
-    ref = torch.fake_quantize_per_channel_affine(w, scale[:, 0], torch.zeros(16, dtype=torch.int32), 0, -127, 127)
+    ref = torch.fake_quantize_per_channel_affine(
+        w, scale[:, 0], torch.zeros(16, dtype=torch.int32), 0, -127, 127
+    )
     assert torch.allclose(q, ref, atol=1e-6)
 
 
@@ -268,8 +288,14 @@ def test_position_probe_agrees_with_torch_cross_entropy():
     out = position_probe(model, windows, buckets=4, batch_tokens=128)
     ids = torch.as_tensor(windows)
     with torch.no_grad():  # reference: torch.nn.functional.cross_entropy per token
-        per_token = torch.nn.functional.cross_entropy(model(ids[:, :-1]).transpose(1, 2), ids[:, 1:], reduction="none")
+        per_token = torch.nn.functional.cross_entropy(
+            model(ids[:, :-1]).transpose(1, 2), ids[:, 1:], reduction="none"
+        )
     assert out["position/loss"] == pytest.approx(float(per_token.mean()), rel=1e-5)
     assert out["position/loss_pos16_32"] == pytest.approx(float(per_token[:, 16:32].mean()), rel=1e-5)
     assert set(k for k in out if k.startswith("position/loss_pos")) == {
-        "position/loss_pos0_16", "position/loss_pos16_32", "position/loss_pos32_48", "position/loss_pos48_64"}
+        "position/loss_pos0_16",
+        "position/loss_pos16_32",
+        "position/loss_pos32_48",
+        "position/loss_pos48_64",
+    }

@@ -16,7 +16,6 @@ from pathlib import Path
 
 import pytest
 import torch
-
 from trainer_helpers import ROOT, SMALL_DATA, run_dirs, scalars, summary, train
 
 pytestmark = pytest.mark.e2e  # runs the real commands in a subprocess
@@ -37,8 +36,15 @@ def start_train(args, run_root, cache):
     cmd = [sys.executable, "-m", "ablate.train", f"run_root={run_root}", "runtime.progress=false", *args]
     # The run keeps an ignored SIGINT ignored (as under nohup); a suite started as a background job
     # passes SIGINT on ignored, so give the child the default disposition a terminal would.
-    return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=ROOT,
-                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+    return subprocess.Popen(
+        cmd,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=env,
+        cwd=ROOT,
+        preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL),
+    )
 
 
 def file_version(path):
@@ -59,7 +65,9 @@ def wait_for_new_checkpoint(proc, run_root, before=None, timeout=120):
                 return path
         if proc.poll() is not None:
             out, err = proc.communicate()
-            pytest.fail(f"run ended (exit {proc.returncode}) before a new checkpoint appeared:\n{err[-2000:]}")
+            pytest.fail(
+                f"run ended (exit {proc.returncode}) before a new checkpoint appeared:\n{err[-2000:]}"
+            )
         time.sleep(0.02)
     proc.kill()
     pytest.fail("no new checkpoint within the timeout")
@@ -78,7 +86,9 @@ def error_lines(proc):
 def grid(tmp_path_factory, cache):
     """A 2-cell grid over the learning rate: one cell trains, the other diverges."""
     root = tmp_path_factory.mktemp("grid")
-    proc = train(["-m", *RESUMABLE, f"optim.lr=0.002,{DIVERGING_LR}", "grid.baseline='optim.lr=0.002'"], root, cache)
+    proc = train(
+        ["-m", *RESUMABLE, f"optim.lr=0.002,{DIVERGING_LR}", "grid.baseline='optim.lr=0.002'"], root, cache
+    )
     assert proc.returncode == 0, proc.stderr[-3000:]
     runs = {summary(d)["status"]: d for d in run_dirs(root)}
     assert set(runs) == {"completed", "diverged"}, runs
@@ -105,13 +115,21 @@ def interrupted(tmp_path_factory, cache):
         out, err = proc.communicate(timeout=120)
         before = file_version(ckpt)
         stages[name] = {
-            "rc": proc.returncode, "stdout": out, "stderr": err, "run_dir": ckpt.parent, "step": checkpoint_step(ckpt),
+            "rc": proc.returncode,
+            "stdout": out,
+            "stderr": err,
+            "run_dir": ckpt.parent,
+            "step": checkpoint_step(ckpt),
             "summary": (ckpt.parent / "summary.json").exists(),
             "temp_files": sorted(p.name for p in ckpt.parent.glob(".*")),
         }
     final = train(RESUMABLE, root, cache)
-    stages["final"] = {"rc": final.returncode, "stdout": final.stdout, "stderr": final.stderr,
-                       "temp_files": sorted(p.name for p in stages["int"]["run_dir"].glob(".*"))}
+    stages["final"] = {
+        "rc": final.returncode,
+        "stdout": final.stdout,
+        "stderr": final.stderr,
+        "temp_files": sorted(p.name for p in stages["int"]["run_dir"].glob(".*")),
+    }
     return stages
 
 
@@ -237,20 +255,31 @@ def test_grid_goes_on_past_a_diverged_run_and_lists_it(grid):
 
 def test_report_lists_the_diverged_run(grid):
     grid_dir = grid["grid_dir"]
-    proc = subprocess.run([sys.executable, "-m", "ablate.report", str(grid_dir)], capture_output=True, text=True,
-                          timeout=300, cwd=ROOT)
+    proc = subprocess.run(
+        [sys.executable, "-m", "ablate.report", str(grid_dir)],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        cwd=ROOT,
+    )
     assert proc.returncode == 0, proc.stderr[-2000:]
     report = (grid_dir / "report.md").read_text()
     left_out = report.split("## Runs left out of the averages", 1)[1].split("\n## ", 1)[0]
     (row,) = [ln for ln in left_out.splitlines() if grid["diverged"].name in ln]
     cells = [c.strip() for c in row.strip("|").split("|")]
-    assert cells[1] == "diverged" and f"{summary(grid['diverged'])['diverged_at_tokens']:,} tokens" in cells[2], row
+    assert (
+        cells[1] == "diverged" and f"{summary(grid['diverged'])['diverged_at_tokens']:,} tokens" in cells[2]
+    ), row
 
 
 def test_rerunning_a_diverged_config_repeats_nothing(grid, cache):
     # without -m the run folder of this config is the grid's cell (grid name "single" in both)
     proc = train([*RESUMABLE, f"optim.lr={DIVERGING_LR}"], grid["root"], cache, timeout=120)
-    assert proc.returncode == 1 and "already diverged" in proc.stdout, (proc.returncode, proc.stdout, proc.stderr)
+    assert proc.returncode == 1 and "already diverged" in proc.stdout, (
+        proc.returncode,
+        proc.stdout,
+        proc.stderr,
+    )
 
 
 def test_bad_config_the_data_reveals_leaves_only_the_error_in_train_log(tmp_path, cache):
@@ -326,8 +355,13 @@ def test_optimizer_step_is_skipped_on_a_non_finite_gradient():
 
 # The calls atomic_write_bytes makes, in order, as (os function, which call of it); the child
 # process dies (SIGKILL) on reaching it. The second fsync is the folder's, after the rename.
-KILL_POINTS = [("fdopen", 1, "old"), ("fsync", 1, "old"), ("chmod", 1, "old"), ("replace", 1, "old"),
-               ("fsync", 2, "new")]
+KILL_POINTS = [
+    ("fdopen", 1, "old"),
+    ("fsync", 1, "old"),
+    ("chmod", 1, "old"),
+    ("replace", 1, "old"),
+    ("fsync", 2, "new"),
+]
 
 
 @pytest.mark.skipif(not hasattr(os, "fork"), reason="needs os.fork (POSIX)")
@@ -371,7 +405,9 @@ def test_load_checkpoint_refuses_files_that_are_not_ours(tmp_path):
     # weights_only=True refuses pickled objects other than tensors and plain containers
     # (torch.load docs, "weights_only"); such a file is refused, never unpickled
     pickled = tmp_path / "pickled.pt"
-    torch.save({"fingerprint": "0" * 16, "step": 1, "model": {}, "optimizer": {}, "extra": Path("x")}, pickled)
+    torch.save(
+        {"fingerprint": "0" * 16, "step": 1, "model": {}, "optimizer": {}, "extra": Path("x")}, pickled
+    )
     with pytest.raises(CheckpointError, match="objects other than tensors"):
         load_checkpoint(pickled, "0" * 16)
     ours = tmp_path / "ours.pt"
@@ -388,7 +424,9 @@ def test_saved_weights_of_another_model_are_refused_before_loading():
     model = torch.nn.Sequential(torch.nn.Linear(4, 3, bias=False), torch.nn.Linear(3, 2, bias=False))
     check_fits(model, model.state_dict(), Path("ok.pt"))  # its own weights fit
     wider = torch.nn.Sequential(torch.nn.Linear(4, 5, bias=False), torch.nn.Linear(5, 2, bias=False))
-    with pytest.raises(CheckpointError, match=r"0 tensors missing, 0 unexpected, 2 of another shape, e\.g\. 0\.weight"):
+    with pytest.raises(
+        CheckpointError, match=r"0 tensors missing, 0 unexpected, 2 of another shape, e\.g\. 0\.weight"
+    ):
         check_fits(model, wider.state_dict(), Path("wide.pt"))
     with pytest.raises(CheckpointError, match=r"1 tensors missing, 0 unexpected"):
         check_fits(model, {"0.weight": model[0].weight}, Path("short.pt"))
@@ -404,8 +442,12 @@ def test_a_failure_keeps_the_folders_earlier_result(tmp_path):
 
     earlier = {"status": "completed", "fingerprint": "abc123", "final_val_loss": 2.6}
     records.write_json(tmp_path / records.SUMMARY, earlier)
-    info = SimpleNamespace(choices={"attention": "standard"}, cell="attention=standard", overrides=["attention=standard"])
-    failed = _record_failure(tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("written by another config"))
+    info = SimpleNamespace(
+        choices={"attention": "standard"}, cell="attention=standard", overrides=["attention=standard"]
+    )
+    failed = _record_failure(
+        tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("written by another config")
+    )
     assert records.read_json(tmp_path / "summary.abc123.json") == earlier
     assert records.read_summary(tmp_path) == failed and failed.status == "failed"
     # a second failure replaces the first failure only: nothing else to keep

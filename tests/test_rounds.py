@@ -14,11 +14,15 @@ def write_runs(folder, values):
         for seed, v in by_seed.items():
             run = folder / f"{cell},seed={seed}"
             run.mkdir(parents=True)
-            records.write_summary(run, records.RunSummary(status="completed", cell=cell, seed=seed, final_val_loss=v))
+            records.write_summary(
+                run, records.RunSummary(status="completed", cell=cell, seed=seed, final_val_loss=v)
+            )
 
 
 def grid_record(folder, seeds, **kw):
-    return records.GridRecord(name="g", dir=str(folder), baseline="attention=standard", seeds=seeds, jobs=2 * len(seeds), **kw)
+    return records.GridRecord(
+        name="g", dir=str(folder), baseline="attention=standard", seeds=seeds, jobs=2 * len(seeds), **kw
+    )
 
 
 def test_halfwidth_is_the_student_t_interval_of_the_paired_differences(tmp_path):
@@ -37,7 +41,11 @@ def test_with_one_pair_the_width_is_unknown(tmp_path):
 
 
 def test_seed_override_is_replaced_not_added():
-    assert with_seeds(["-m", "recipe=quickstart", "seed=0,1"], [0, 1, 2, 3]) == ["-m", "recipe=quickstart", "seed=0,1,2,3"]
+    assert with_seeds(["-m", "recipe=quickstart", "seed=0,1"], [0, 1, 2, 3]) == [
+        "-m",
+        "recipe=quickstart",
+        "seed=0,1,2,3",
+    ]
 
 
 def test_rounds_double_the_seeds_until_the_cap_and_stop(tmp_path):
@@ -50,7 +58,10 @@ def test_rounds_double_the_seeds_until_the_cap_and_stop(tmp_path):
     def launch(argv):
         seeds = [int(s) for s in argv[-1].split("=")[1].split(",")]
         launched.append(seeds)
-        new = {cell: {s: 3.0 + 0.1 * ((s * 7 + len(cell)) % 3) for s in seeds if s not in by} for cell, by in values.items()}
+        new = {
+            cell: {s: 3.0 + 0.1 * ((s * 7 + len(cell)) % 3) for s in seeds if s not in by}
+            for cell, by in values.items()
+        }
         write_runs(tmp_path, new)
         for cell in values:
             values[cell].update(new[cell])
@@ -61,7 +72,10 @@ def test_rounds_double_the_seeds_until_the_cap_and_stop(tmp_path):
 
 
 def test_rounds_stop_once_the_width_is_reached(tmp_path):
-    write_runs(tmp_path, {"attention=standard": {0: 3.0, 1: 3.1, 2: 3.2}, "attention=differential": {0: 2.9, 1: 3.0, 2: 3.1}})
+    write_runs(
+        tmp_path,
+        {"attention=standard": {0: 3.0, 1: 3.1, 2: 3.2}, "attention=differential": {0: 2.9, 1: 3.0, 2: 3.1}},
+    )
     launched = []
     more_rounds(grid_record(tmp_path, [0, 1, 2], max_seeds=8, resolution=0.01), ["-m"], launched.append)
     assert launched == []  # a constant difference has zero width: resolved after the first round
@@ -76,19 +90,41 @@ def test_a_drill_grid_adds_seed_rounds_to_the_cap_and_reports(tmp_path, cache):
 
     from trainer_helpers import ROOT, run_dirs, summary, train
 
-    proc = train(["-m", "recipe=induction", "hydra.launcher.n_jobs=1", "budget.tokens=2e4",
-                  "budget.eval_every_tokens=1e4", "probes=off", "grid.max_seeds=5", "grid.resolution=1e-9",
-                  "seed=0,1"], tmp_path, cache, timeout=600)
+    proc = train(
+        [
+            "-m",
+            "recipe=induction",
+            "hydra.launcher.n_jobs=1",
+            "budget.tokens=2e4",
+            "budget.eval_every_tokens=1e4",
+            "probes=off",
+            "grid.max_seeds=5",
+            "grid.resolution=1e-9",
+            "seed=0,1",
+        ],
+        tmp_path,
+        cache,
+        timeout=600,
+    )
     assert proc.returncode == 0, proc.stderr[-3000:]
     assert "round 2 adds seeds 2-3" in proc.stdout and "round 3 adds seeds 4-4" in proc.stdout
     assert "at the cap of 5 seeds" in proc.stdout
     done = [summary(d) for d in run_dirs(tmp_path)]
     assert sorted((s["attention"], s["seed"]) for s in done) == sorted(
-        (a, s) for a in ("standard", "differential") for s in range(5))
+        (a, s) for a in ("standard", "differential") for s in range(5)
+    )
     assert all("drill/auc" in s["probes"] and 0.0 <= s["probes"]["drill/auc"] <= 1.0 for s in done)
     grid = records.read_grid(tmp_path / "induction")
     assert grid.rounds == 3 and grid.seeds == [0, 1, 2, 3, 4]
-    report = subprocess.run([sys.executable, "-m", "ablate.report", str(tmp_path / "induction")],
-                            capture_output=True, text=True, cwd=ROOT, timeout=300)
+    report = subprocess.run(
+        [sys.executable, "-m", "ablate.report", str(tmp_path / "induction")],
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+        timeout=300,
+    )
     assert report.returncode == 0, report.stderr[-2000:]
-    assert report.stdout.splitlines()[0].startswith("induction:") and "drill/auc" in report.stdout.splitlines()[0]
+    assert (
+        report.stdout.splitlines()[0].startswith("induction:")
+        and "drill/auc" in report.stdout.splitlines()[0]
+    )

@@ -3,7 +3,6 @@
 import math
 
 import pytest
-
 from trainer_helpers import SMALL_DATA, run_dirs, scalars, summary, tags, train
 
 pytestmark = pytest.mark.e2e  # runs the real commands in a subprocess
@@ -26,8 +25,20 @@ def smoke_runs(tmp_path_factory, cache):
 @pytest.mark.parametrize("attention", ["standard", "differential"])
 def test_smoke_run_writes_a_complete_summary(smoke_runs, attention):
     s = summary(smoke_runs[attention])
-    for key in ("status", "attention", "seed", "params", "non_embedding_params", "flops_per_token", "tokens",
-                "train_flops", "final_val_loss", "wall_seconds", "probes", "environment"):
+    for key in (
+        "status",
+        "attention",
+        "seed",
+        "params",
+        "non_embedding_params",
+        "flops_per_token",
+        "tokens",
+        "train_flops",
+        "final_val_loss",
+        "wall_seconds",
+        "probes",
+        "environment",
+    ):
         assert key in s, key
     assert s["status"] == "completed" and s["attention"] == attention
     vocab = 1024
@@ -35,13 +46,22 @@ def test_smoke_run_writes_a_complete_summary(smoke_runs, attention):
     assert math.isfinite(s["final_val_loss"]) and s["final_val_loss"] < math.log(vocab)
     assert s["tokens"] == 16384 and s["train_flops"] == pytest.approx(s["tokens"] * s["flops_per_token"])
     assert s["environment"]["torch_version"] and s["environment"]["threads"] >= 1
-    assert (smoke_runs[attention] / "config.yaml").exists() and (smoke_runs[attention] / "checkpoint.pt").exists()
+    assert (smoke_runs[attention] / "config.yaml").exists() and (
+        smoke_runs[attention] / "checkpoint.pt"
+    ).exists()
 
 
 @pytest.mark.parametrize("attention", ["standard", "differential"])
 def test_event_file_has_the_tags_with_token_steps(smoke_runs, attention):
     run_dir = smoke_runs[attention]
-    expected = {"loss/train", "loss/val", "optim/lr", "optim/grad_norm", "speed/tokens_per_second", "compute/train_flops"}
+    expected = {
+        "loss/train",
+        "loss/val",
+        "optim/lr",
+        "optim/grad_norm",
+        "speed/tokens_per_second",
+        "compute/train_flops",
+    }
     if attention == "differential":
         expected |= {f"lambda/layer_{i}" for i in range(4)}
     assert expected <= tags(run_dir)

@@ -16,15 +16,25 @@ FLOOR = 1e-8  # Zipf 1.0 = 10 ** (1.0 - 9) as a share of all words
 
 
 def world_names(world) -> dict[str, list[str]]:
-    return {"isle": world.isles, "light": list(world.lighthouses.values()), "keeper": world.keepers,
-            "ship": world.ships, "label": world.labels}
+    return {
+        "isle": world.isles,
+        "light": list(world.lighthouses.values()),
+        "keeper": world.keepers,
+        "ship": world.ships,
+        "label": world.labels,
+    }
 
 
 @pytest.mark.parametrize("seed", [1234, 0, 1, 7, 99])
 def test_no_name_is_a_word_in_use_in_nine_languages(seed):
     world = build_world(seed, 20, 30, 120, 64)  # the default data config's world (conf/data/toy.yaml)
-    found = [(kind, name, lang) for kind, names in world_names(world).items() for name in names
-             for lang in LANGUAGES if word_frequency(name, lang, wordlist="large") >= FLOOR]
+    found = [
+        (kind, name, lang)
+        for kind, names in world_names(world).items()
+        for name in names
+        for lang in LANGUAGES
+        if word_frequency(name, lang, wordlist="large") >= FLOOR
+    ]
     assert found == []
 
 

@@ -16,7 +16,15 @@ def train(args, run_root, cache, timeout=600, extra_env=None):
     env = dict(os.environ, HEADTOHEAD_CACHE=str(cache), PYTHONHASHSEED="0")
     env.update(extra_env or {})
     # One torch thread: on a shared or busy machine, two threads per run can be several times slower.
-    cmd = [sys.executable, "-m", "ablate.train", f"run_root={run_root}", "runtime.progress=false", "runtime.threads=1", *args]
+    cmd = [
+        sys.executable,
+        "-m",
+        "ablate.train",
+        f"run_root={run_root}",
+        "runtime.progress=false",
+        "runtime.threads=1",
+        *args,
+    ]
     return subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, env=env, cwd=ROOT)
 
 

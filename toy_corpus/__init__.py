@@ -9,5 +9,14 @@ from .config import check_config
 from .corpus import Corpus, cache_key, default_cache_dir, get_corpus
 from .tokenizer import DOC_START_ID
 
-__all__ = ["Corpus", "get_corpus", "WindowBatches", "validation_windows", "document_starts", "check_config",
-           "cache_key", "default_cache_dir", "DOC_START_ID"]
+__all__ = [
+    "Corpus",
+    "get_corpus",
+    "WindowBatches",
+    "validation_windows",
+    "document_starts",
+    "check_config",
+    "cache_key",
+    "default_cache_dir",
+    "DOC_START_ID",
+]

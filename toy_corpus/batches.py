@@ -19,8 +19,11 @@ def document_starts(ids: np.ndarray, seq_len: int) -> np.ndarray:
     starts = np.flatnonzero(ids == DOC_START_ID)
     starts = starts[starts + seq_len + 1 <= len(ids)]
     if len(starts) == 0:
-        raise ValueError(f"ids: no document start (id {DOC_START_ID}) leaves room for a window of seq_len + 1 = {seq_len + 1} "
-                         f"tokens in {len(ids)} tokens")
+        raise ValueError(
+            f"ids: no document start (id {DOC_START_ID}) leaves room for a window of seq_len + 1 = "
+            f"{seq_len + 1} "
+            f"tokens in {len(ids)} tokens"
+        )
     return starts.astype(np.int64)
 
 
@@ -52,6 +55,9 @@ def validation_windows(ids: np.ndarray, seq_len: int, n_windows: int) -> np.ndar
     if n_windows <= 0:
         raise ValueError(f"n_windows={n_windows}: must be >= 1")
     if n_windows > len(starts):
-        raise ValueError(f"n_windows={n_windows}: only {len(starts)} document starts leave room for a window of seq_len + 1")
+        raise ValueError(
+            f"n_windows={n_windows}: only {len(starts)} document starts leave room for a window of "
+            "seq_len + 1"
+        )
     chosen = starts[np.linspace(0, len(starts) - 1, n_windows).round().astype(np.int64)]
     return ids[chosen[:, None] + np.arange(seq_len + 1)].astype(np.int64)

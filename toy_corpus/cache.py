@@ -33,8 +33,11 @@ def write_manifest(folder: Path) -> dict:
     """Record every file of ``folder`` (bytes and SHA-256) in ``manifest.json``, through a
     temporary file and a rename so that a half-written manifest never exists."""
     folder = Path(folder)
-    files = {p.name: {"bytes": p.stat().st_size, "sha256": file_sha256(p)}
-             for p in sorted(folder.iterdir()) if p.is_file() and p.name != MANIFEST}
+    files = {
+        p.name: {"bytes": p.stat().st_size, "sha256": file_sha256(p)}
+        for p in sorted(folder.iterdir())
+        if p.is_file() and p.name != MANIFEST
+    }
     manifest = {"version": MANIFEST_VERSION, "files": files}
     tmp = folder / f".{MANIFEST}.partial"
     tmp.write_text(json.dumps(manifest, indent=1, sort_keys=True) + "\n")
@@ -52,8 +55,9 @@ def read_manifest(folder: Path) -> tuple[dict | None, str | None]:
     except (OSError, ValueError) as exc:
         return None, f"{MANIFEST} is unreadable ({type(exc).__name__})"
     files = manifest.get("files") if isinstance(manifest, dict) else None
-    entries_ok = isinstance(files, dict) and all(isinstance(v, dict) and {"bytes", "sha256"} <= set(v)
-                                                 for v in files.values())
+    entries_ok = isinstance(files, dict) and all(
+        isinstance(v, dict) and {"bytes", "sha256"} <= set(v) for v in files.values()
+    )
     if not entries_ok:
         return None, f"{MANIFEST} is not a manifest of this cache"
     return manifest, None

@@ -30,9 +30,15 @@ def _show_item(corpus, item: dict, spans: tuple[str, ...]) -> None:
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="h2h-corpus", description=__doc__.splitlines()[0])
-    parser.add_argument("--config", default=str(DEFAULT_CONFIG), help="data config YAML (default: %(default)s)")
-    parser.add_argument("--seq-len", type=int, default=256, help="model window the probes must fit (default: 256)")
-    parser.add_argument("--cache-dir", default=None, help="cache folder (default: $HEADTOHEAD_CACHE or ~/.cache/headtohead)")
+    parser.add_argument(
+        "--config", default=str(DEFAULT_CONFIG), help="data config YAML (default: %(default)s)"
+    )
+    parser.add_argument(
+        "--seq-len", type=int, default=256, help="model window the probes must fit (default: 256)"
+    )
+    parser.add_argument(
+        "--cache-dir", default=None, help="cache folder (default: $HEADTOHEAD_CACHE or ~/.cache/headtohead)"
+    )
     parser.add_argument("overrides", nargs="*", help="key=value overrides of the data config")
     args = parser.parse_args(argv)
     try:
@@ -49,10 +55,16 @@ def main(argv: list[str] | None = None) -> int:
         print(f"h2h-corpus: error: {err}", file=sys.stderr)
         return 2
     s = corpus.stats
-    print(f"corpus: {corpus.cache_path}  (ready in {seconds:.2f} s; first build took {s['build_seconds']['total']:.1f} s)")
+    print(
+        f"corpus: {corpus.cache_path}  (ready in {seconds:.2f} s; first build took "
+        f"{s['build_seconds']['total']:.1f} s)"
+    )
     print(f"checked: every file's size and SHA-256 against {MANIFEST}")
     print(f"vocabulary: {corpus.vocab_size} pieces")
-    print(f"train: {s['train_documents']} documents, {s['train_tokens']:,} tokens, {s['train_characters']:,} characters")
+    print(
+        f"train: {s['train_documents']} documents, {s['train_tokens']:,} tokens, "
+        f"{s['train_characters']:,} characters"
+    )
     print(f"validation: {s['val_documents']} documents, {s['val_tokens']:,} tokens")
     print(f"tokens per document: mean {s['mean_document_tokens']:.1f}, max {s['max_document_tokens']}")
     print("share of training documents / tokens by kind:")
@@ -65,7 +77,9 @@ def main(argv: list[str] | None = None) -> int:
             print(f"\nexample {kind} document:\n  {docs[kinds.index(kind)]}")
     for name, items in corpus.probe_sets.items():
         print(f"\nprobe set {name}: {len(items)} items; example:")
-        spans = ("answer_spans", "asked_spans", "distractor_spans") if name == "retrieval" else ("answer_spans",)
+        spans = (
+            ("answer_spans", "asked_spans", "distractor_spans") if name == "retrieval" else ("answer_spans",)
+        )
         _show_item(corpus, items[len(items) // 2], spans)
     return 0
 

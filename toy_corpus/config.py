@@ -144,8 +144,13 @@ def _real(cfg: Mapping, path: str, lo: float, hi: float) -> float:
 
 def _range(cfg: Mapping, path: str, lo: int, hi: int | None = None) -> tuple[int, int]:
     v = _get(cfg, path)
-    ok = (isinstance(v, (list, tuple)) and len(v) == 2 and all(isinstance(x, numbers.Integral) and not isinstance(x, bool) for x in v)
-          and lo <= v[0] <= v[1] and (hi is None or v[1] <= hi))
+    ok = (
+        isinstance(v, (list, tuple))
+        and len(v) == 2
+        and all(isinstance(x, numbers.Integral) and not isinstance(x, bool) for x in v)
+        and lo <= v[0] <= v[1]
+        and (hi is None or v[1] <= hi)
+    )
     if not ok:
         bound = f"{lo} <= low <= high" + ("" if hi is None else f" <= {hi}")
         raise ValueError(f"data.{path}={v!r}: must be an inclusive integer range [low, high] with {bound}")
@@ -154,8 +159,17 @@ def _range(cfg: Mapping, path: str, lo: int, hi: int | None = None) -> tuple[int
 
 def _int_list(cfg: Mapping, path: str, lo: int, hi: int | None = None) -> list[int]:
     v = _get(cfg, path)
-    ok = (isinstance(v, (list, tuple)) and len(v) > 0
-          and all(isinstance(x, numbers.Integral) and not isinstance(x, bool) and x >= lo and (hi is None or x <= hi) for x in v))
+    ok = (
+        isinstance(v, (list, tuple))
+        and len(v) > 0
+        and all(
+            isinstance(x, numbers.Integral)
+            and not isinstance(x, bool)
+            and x >= lo
+            and (hi is None or x <= hi)
+            for x in v
+        )
+    )
     if not ok:
         bound = f">= {lo}" + ("" if hi is None else f" and <= {hi}")
         raise ValueError(f"data.{path}={v!r}: must be a non-empty list of integers {bound}")
@@ -171,7 +185,9 @@ def vocab_limits(cfg: Mapping) -> tuple[int, int]:
     than the characters plus those merges summed over every distinct word.
     """
     w = _get(cfg, "world")
-    world = W.build_world(int(_get(cfg, "seed")), int(w["isle_pairs"]), int(w["keepers"]), int(w["ships"]), int(w["labels"]))
+    world = W.build_world(
+        int(_get(cfg, "seed")), int(w["isle_pairs"]), int(w["keepers"]), int(w["ships"]), int(w["labels"])
+    )
     words = set(W.all_words(world))
     chars = set("".join(words)) | set("0123456789")
     smallest = len(chars) + N_SPECIAL_TOKENS + 1
@@ -201,14 +217,21 @@ def check_config(cfg: Mapping, seq_len: int) -> None:
 def _check_mixture(cfg: Mapping) -> None:
     mixture = _get(cfg, "mixture")
     if not isinstance(mixture, Mapping) or not mixture:
-        raise ValueError(f"data.mixture={mixture!r}: must map document kinds ({', '.join(DOCUMENT_KINDS)}) to weights")
+        raise ValueError(
+            f"data.mixture={mixture!r}: must map document kinds ({', '.join(DOCUMENT_KINDS)}) to weights"
+        )
     for kind, weight in mixture.items():
         if kind not in DOCUMENT_KINDS:
-            raise ValueError(f"data.mixture: unknown document kind {kind!r}; allowed: {', '.join(DOCUMENT_KINDS)}")
+            raise ValueError(
+                f"data.mixture: unknown document kind {kind!r}; allowed: {', '.join(DOCUMENT_KINDS)}"
+            )
         if not isinstance(weight, numbers.Real) or isinstance(weight, bool) or weight < 0:
             raise ValueError(f"data.mixture.{kind}={weight!r}: weights must be numbers >= 0")
     if sum(float(x) for x in mixture.values()) <= 0:
-        raise ValueError(f"data.mixture: weights sum to {sum(float(x) for x in mixture.values())}; they must sum to a positive number")
+        raise ValueError(
+            f"data.mixture: weights sum to {sum(float(x) for x in mixture.values())}; they must sum to "
+            "a positive number"
+        )
 
 
 def _check_documents(cfg: Mapping) -> None:
@@ -242,10 +265,14 @@ def _check_documents(cfg: Mapping) -> None:
             raise ValueError(f"data.copy.distinct={distinct!r}: must be true or false")
         if distinct:  # the lexicon's size does not depend on the seed, so any world of this shape tells it
             wc = cfg["world"]
-            n_words = len(W.build_world(0, wc["isle_pairs"], wc["keepers"], wc["ships"], wc["labels"]).filler_words)
+            n_words = len(
+                W.build_world(0, wc["isle_pairs"], wc["keepers"], wc["ships"], wc["labels"]).filler_words
+            )
             if w_hi > n_words:
-                raise ValueError(f"data.copy.words={[w_lo, w_hi]}: with copy.distinct=true a note has at most {n_words} "
-                                 f"words (the filler lexicon); allowed: upper bound <= {n_words}")
+                raise ValueError(
+                    f"data.copy.words={[w_lo, w_hi]}: with copy.distinct=true a note has at most {n_words} "
+                    f"words (the filler lexicon); allowed: upper bound <= {n_words}"
+                )
 
 
 def _check_tokenizer(cfg: Mapping) -> None:
@@ -256,20 +283,31 @@ def _check_tokenizer(cfg: Mapping) -> None:
     lo, hi = vocab_limits(cfg)
     vocab = _get(cfg, "vocab_size")
     if not isinstance(vocab, numbers.Integral) or isinstance(vocab, bool) or not lo <= vocab <= hi:
-        raise ValueError(f"data.vocab_size={vocab!r}: must be an integer in [{lo}, {hi}] for this text "
-                         f"(smaller cannot hold every character; larger has no pieces left to form)")
+        raise ValueError(
+            f"data.vocab_size={vocab!r}: must be an integer in [{lo}, {hi}] for this text "
+            f"(smaller cannot hold every character; larger has no pieces left to form)"
+        )
 
 
 def _check_probe_sets(cfg: Mapping, seq_len: int) -> None:
     lens = _int_list(cfg, "probes.retrieval.context_lens", 16)
     for n in lens:
         if n > seq_len + 1:
-            raise ValueError(f"data.probes.retrieval.context_lens: {n} is longer than seq_len + 1 = {seq_len + 1}; "
-                             f"allowed: lengths <= {seq_len + 1}")
+            raise ValueError(
+                f"data.probes.retrieval.context_lens: {n} is longer than seq_len + 1 = {seq_len + 1}; "
+                f"allowed: lengths <= {seq_len + 1}"
+            )
     depths = _get(cfg, "probes.retrieval.depths")
-    if not isinstance(depths, (list, tuple)) or not depths or not all(
-            isinstance(d, numbers.Real) and not isinstance(d, bool) and 0.0 <= d <= 1.0 for d in depths):
-        raise ValueError(f"data.probes.retrieval.depths={depths!r}: must be a non-empty list of numbers in [0, 1]")
+    if (
+        not isinstance(depths, (list, tuple))
+        or not depths
+        or not all(
+            isinstance(d, numbers.Real) and not isinstance(d, bool) and 0.0 <= d <= 1.0 for d in depths
+        )
+    ):
+        raise ValueError(
+            f"data.probes.retrieval.depths={depths!r}: must be a non-empty list of numbers in [0, 1]"
+        )
     needles = _int_list(cfg, "probes.retrieval.n_needles", 1, _get(cfg, "world.isle_pairs"))
     _int_list(cfg, "probes.retrieval.n_asked", 1, max(needles))
     _int(cfg, "probes.retrieval.items_per_cell", 1, 100)
@@ -278,8 +316,11 @@ def _check_probe_sets(cfg: Mapping, seq_len: int) -> None:
     classes = _int_list(cfg, "probes.classification.n_classes", 2, len(W.SIGHTINGS))
     demos = _int_list(cfg, "probes.classification.n_demos", 1, 200)
     if min(demos) < max(classes):
-        raise ValueError(f"data.probes.classification.n_demos={demos}: each must be >= every n_classes (max {max(classes)}), "
-                         f"so that every class has a demonstration")
+        raise ValueError(
+            f"data.probes.classification.n_demos={demos}: each must be >= every n_classes (max "
+            f"{max(classes)}), "
+            f"so that every class has a demonstration"
+        )
     _int(cfg, "probes.classification.episodes", 1, 100)
     r = _int(cfg, "probes.classification.random_orders", 0, 20)
     g = _int(cfg, "probes.classification.grouped_orders", 0, 20)

@@ -33,7 +33,9 @@ from .probes import classification_set, retrieval_set
 from .tokenizer import DOC_START_ID, load_tokenizer, train_tokenizer
 from .world import build_world
 
-GENERATOR_VERSION = 2  # bump when generated text changes for the same config (2: names in common use are redrawn)
+GENERATOR_VERSION = (
+    2  # bump when generated text changes for the same config (2: names in common use are redrawn)
+)
 
 
 def default_cache_dir() -> Path:
@@ -97,14 +99,21 @@ def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> d
 
     n_tok_docs = min(int(cfg["tokenizer"]["train_documents"]), len(train_texts))
     pick = np.linspace(0, len(train_texts) - 1, n_tok_docs).round().astype(int)
-    model_bytes = train_tokenizer([train_texts[i] for i in pick], int(cfg["vocab_size"]), cfg["tokenizer"]["model_type"])
+    model_bytes = train_tokenizer(
+        [train_texts[i] for i in pick], int(cfg["vocab_size"]), cfg["tokenizer"]["model_type"]
+    )
     sp = load_tokenizer(model_bytes)
     if sp.get_piece_size() != int(cfg["vocab_size"]):
-        raise ValueError(f"data.vocab_size={cfg['vocab_size']}: SentencePiece built only {sp.get_piece_size()} pieces from this text")
+        raise ValueError(
+            f"data.vocab_size={cfg['vocab_size']}: SentencePiece built only {sp.get_piece_size()} "
+            "pieces from this text"
+        )
     t_tok = time.perf_counter()
 
     train_ids, train_lens = _encode_documents(sp, train_texts)
-    val_ids, val_lens = _encode_documents(sp, val_texts) if val_texts else (np.zeros(0, np.uint16), np.zeros(0, np.int64))
+    val_ids, val_lens = (
+        _encode_documents(sp, val_texts) if val_texts else (np.zeros(0, np.uint16), np.zeros(0, np.int64))
+    )
     t_ids = time.perf_counter()
 
     encode_cache: dict[str, list[int]] = {}
@@ -114,8 +123,10 @@ def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> d
             encode_cache[text] = sp.encode(text)
         return encode_cache[text]
 
-    probes = {"retrieval": retrieval_set(world, encode, cfg, seed),
-              "classification": classification_set(world, encode, cfg, seed, seq_len)}
+    probes = {
+        "retrieval": retrieval_set(world, encode, cfg, seed),
+        "classification": classification_set(world, encode, cfg, seed, seq_len),
+    }
     t_probe = time.perf_counter()
 
     tokens_by_kind = {k: 0 for k in cfg["mixture"]}
@@ -137,8 +148,13 @@ def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> d
         "document_share": {k: docs_by_kind[k] / len(train_texts) for k in docs_by_kind},
         "token_share": {k: tokens_by_kind[k] / n_train_tokens for k in tokens_by_kind},
         "probe_items": {name: len(items) for name, items in probes.items()},
-        "build_seconds": {"text": t_text - t0, "tokenizer": t_tok - t_text, "encode": t_ids - t_tok,
-                          "probes": t_probe - t_ids, "total": time.perf_counter() - t0},
+        "build_seconds": {
+            "text": t_text - t0,
+            "tokenizer": t_tok - t_text,
+            "encode": t_ids - t_tok,
+            "probes": t_probe - t_ids,
+            "total": time.perf_counter() - t0,
+        },
     }
     (out / "tokenizer.model").write_bytes(model_bytes)
     np.save(out / "train_ids.npy", train_ids)
@@ -171,8 +187,11 @@ def _check_probe_lengths(probe_sets: Mapping[str, list[dict]], seq_len: int) -> 
     for name, items in probe_sets.items():
         longest = max((len(it["tokens"]) for it in items), default=0)
         if longest > seq_len + 1:
-            raise ValueError(f"data.probes.{name}: items of up to {longest} tokens do not fit seq_len + 1 = {seq_len + 1}; "
-                             f"allowed: items of at most seq_len + 1 tokens")
+            raise ValueError(
+                f"data.probes.{name}: items of up to {longest} tokens do not fit seq_len + 1 = "
+                f"{seq_len + 1}; "
+                f"allowed: items of at most seq_len + 1 tokens"
+            )
 
 
 # what numpy, json and sentencepiece raise on a damaged file
@@ -211,15 +230,18 @@ def _build_into_place(cfg: dict, seq_len: int, root: Path, path: Path) -> None:
             os.rename(path, aside)
         os.replace(tmp, path)
     except OSError as exc:
-        raise CacheError(f"{root}: could not build the corpus cache ({exc.strerror or _first_line(exc)}); "
-                         "nothing there was replaced") from None
+        raise CacheError(
+            f"{root}: could not build the corpus cache ({exc.strerror or _first_line(exc)}); "
+            "nothing there was replaced"
+        ) from None
     finally:
         for leftover in root.glob(f"{path.name}.building-*"):
             shutil.rmtree(leftover, ignore_errors=True)
 
 
-def get_corpus(data_cfg: Mapping, seq_len: int, cache_dir: str | os.PathLike | None = None,
-               verify: bool = False) -> Corpus:
+def get_corpus(
+    data_cfg: Mapping, seq_len: int, cache_dir: str | os.PathLike | None = None, verify: bool = False
+) -> Corpus:
     """The corpus for ``data_cfg`` (the plain dict of the data config group), built once and
     cached. ``verify`` checks every file's SHA-256 against the manifest (sizes are always checked)."""
     cfg = json.loads(json.dumps(dict(data_cfg)))  # plain, detached copy
@@ -233,8 +255,9 @@ def get_corpus(data_cfg: Mapping, seq_len: int, cache_dir: str | os.PathLike | N
             corpus, again = _checked_load(path, cfg, verify) if path.exists() else (None, None)
             if corpus is None:
                 if path.exists():
-                    print(f"corpus cache {path}: {again or problem}; rebuilding it",
-                          file=sys.stderr, flush=True)
+                    print(
+                        f"corpus cache {path}: {again or problem}; rebuilding it", file=sys.stderr, flush=True
+                    )
                 _build_into_place(cfg, seq_len, root, path)
                 corpus, problem = _checked_load(path, cfg, True)
                 if corpus is None:

@@ -80,7 +80,12 @@ class NarrativeGrammar:
     def __init__(self, world: World, zipf: float):
         self.world = world
         p = lambda items: ZipfPicker(items, zipf)  # noqa: E731
-        self.wind, self.strength, self.sky, self.sea = p(W.WEATHER_WIND), p(W.WEATHER_STRENGTH), p(W.WEATHER_SKY), p(W.SEA_STATE)
+        self.wind, self.strength, self.sky, self.sea = (
+            p(W.WEATHER_WIND),
+            p(W.WEATHER_STRENGTH),
+            p(W.WEATHER_SKY),
+            p(W.SEA_STATE),
+        )
         self.ship_kind, self.ship_action, self.bearing = p(W.SHIP_KIND), p(W.SHIP_ACTION), p(W.BEARING)
         self.part, self.repair, self.material = p(W.REPAIR_PART), p(W.REPAIR_ACT), p(W.MATERIAL)
         self.goods, self.units, self.count, self.time = p(W.GOODS), p(W.UNITS), p(W.COUNT_WORDS), p(W.TIMES)
@@ -98,7 +103,8 @@ class NarrativeGrammar:
         if kind == "ship":
             ship = rng.choice(ships)
             if rng.random() < 0.5:
-                return f"the {o(self.ship_kind)} {ship} {o(self.ship_action)} {o(self.bearing)} at {o(self.time)} ."
+                kind_, action, bearing = o(self.ship_kind), o(self.ship_action), o(self.bearing)
+                return f"the {kind_} {ship} {action} {bearing} at {o(self.time)} ."
             return f"{ship} {o(self.ship_action)} {o(self.bearing)} bound for {o(self.isle)} ."
         if kind == "repair":
             return f"{o(self.keeper)} {o(self.repair)} the {o(self.part)} with {o(self.material)} ."
@@ -114,7 +120,9 @@ class NarrativeGrammar:
 
 
 # ----------------------------------------------------------------------------- facts
-def pick_fact_keys(rng: random.Random, world: World, n_facts: int, p_same_isle: float, p_sibling: float) -> list[tuple[str, str]]:
+def pick_fact_keys(
+    rng: random.Random, world: World, n_facts: int, p_same_isle: float, p_sibling: float
+) -> list[tuple[str, str]]:
     """Choose ``n_facts`` distinct (attribute, isle) keys, with near misses mixed in on purpose:
     with probability ``p_same_isle`` a key reuses an earlier isle with another attribute, with
     probability ``p_sibling`` it uses the look-alike of an earlier isle with the same attribute."""
@@ -168,8 +176,9 @@ def facts_entry(rng: random.Random, world: World, filler: ZipfPicker, cfg: Mappi
 
 
 # ----------------------------------------------------------------------------- classification
-def draw_episode(rng: random.Random, world: World, n_classes: int, n_demos: int, n_queries: int,
-                 n_noise: int) -> dict:
+def draw_episode(
+    rng: random.Random, world: World, n_classes: int, n_demos: int, n_queries: int, n_noise: int
+) -> dict:
     """One in-context classification episode.
 
     Each class is one sighting (the deciding feature); its label word is drawn afresh from the
@@ -189,12 +198,17 @@ def draw_episode(rng: random.Random, world: World, n_classes: int, n_demos: int,
         noise = [(name, rng.choice(values)) for name, values in feats]
         return {"cls": c, "text": report_text(noise, sightings[c]), "label": labels[c]}
 
-    return {"sightings": sightings, "labels": labels,
-            "demos": [report(c) for c in demo_classes], "queries": [report(c) for c in query_classes]}
+    return {
+        "sightings": sightings,
+        "labels": labels,
+        "demos": [report(c) for c in demo_classes],
+        "queries": [report(c) for c in query_classes],
+    }
 
 
 def order_demos(rng: random.Random, demos: list[dict], ordering: str) -> list[dict]:
-    """``random``: a fresh shuffle; ``grouped``: demonstrations of one class together, classes in random order."""
+    """``random``: a fresh shuffle; ``grouped``: demonstrations of one class together, classes in "
+    "random order."""
     if ordering == "random":
         out = list(demos)
         rng.shuffle(out)
@@ -212,8 +226,10 @@ def classify_entry(rng: random.Random, world: World, cfg: Mapping) -> str:
     ep = draw_episode(rng, world, n_classes, n_demos, cfg["queries"], cfg["noise_features"])
     ordering = "grouped" if rng.random() < cfg["p_grouped"] else "random"
     lines = order_demos(rng, ep["demos"], ordering) + ep["queries"]
-    return " ".join([f"sorting at {world.lighthouses[rng.choice(world.isles)]} light ."]
-                    + [f"{d['text']} {d['label']} ." for d in lines])
+    return " ".join(
+        [f"sorting at {world.lighthouses[rng.choice(world.isles)]} light ."]
+        + [f"{d['text']} {d['label']} ." for d in lines]
+    )
 
 
 # ----------------------------------------------------------------------------- fair copies
@@ -243,10 +259,14 @@ class DocumentMaker:
             return classify_entry(rng, self.world, self.cfg["classify"])
         if kind == "copy":
             return copy_entry(rng, self.world, self.copy_words, self.cfg["copy"])
-        raise ValueError(f"data.mixture: unknown document kind {kind!r}; allowed: {', '.join(DOCUMENT_KINDS)}")
+        raise ValueError(
+            f"data.mixture: unknown document kind {kind!r}; allowed: {', '.join(DOCUMENT_KINDS)}"
+        )
 
 
-def generate_documents(world: World, cfg: Mapping, n_documents: int, seed_key: str) -> tuple[list[str], list[str]]:
+def generate_documents(
+    world: World, cfg: Mapping, n_documents: int, seed_key: str
+) -> tuple[list[str], list[str]]:
     """``n_documents`` documents; the kind of each drawn by the mixture weights. Returns (kinds, texts)."""
     rng = random.Random(seed_key)
     maker = DocumentMaker(world, cfg)

@@ -54,13 +54,18 @@ def _needle_keys(rng: random.Random, world: World, n_needles: int, n_asked: int,
                 if key not in keys:
                     break
             else:
-                raise ValueError(f"data.probes.retrieval.{kind}_distractors={count}: too many distinct near misses for the attributes")
+                raise ValueError(
+                    f"data.probes.retrieval.{kind}_distractors={count}: too many distinct near misses "
+                    "for the attributes"
+                )
             keys.add(key)
             near.append(key)
     return needles, asked, near
 
 
-def _haystack(rng: random.Random, encode: Encode, filler: ZipfPicker, budget: int) -> tuple[list[str], list[int], int]:
+def _haystack(
+    rng: random.Random, encode: Encode, filler: ZipfPicker, budget: int
+) -> tuple[list[str], list[int], int]:
     """Filler words up to ``budget`` tokens: the words, each one's token offset, the tokens used."""
     words, word_tokens, used = [], [], 0
     for _ in range(10 * budget + 10):
@@ -74,12 +79,22 @@ def _haystack(rng: random.Random, encode: Encode, filler: ZipfPicker, budget: in
     return words, word_tokens, used
 
 
-def _gaps(rng: random.Random, words: list[str], word_tokens: list[int], used: int, depth: float, n_needles: int,
-          asked: list[int], n_near: int) -> dict[int, list[tuple[str, int]]]:
+def _gaps(
+    rng: random.Random,
+    words: list[str],
+    word_tokens: list[int],
+    used: int,
+    depth: float,
+    n_needles: int,
+    asked: list[int],
+    n_near: int,
+) -> dict[int, list[tuple[str, int]]]:
     """Which facts go into which gap: the asked ones at the gap nearest ``depth``, the rest at random.
     Gap g sits before filler word g (g = len(words) is the end of the haystack)."""
     target = depth * used
-    asked_gap = min(range(len(words) + 1), key=lambda g: abs((word_tokens[g] if g < len(words) else used) - target))
+    asked_gap = min(
+        range(len(words) + 1), key=lambda g: abs((word_tokens[g] if g < len(words) else used) - target)
+    )
     others = [i for i in range(n_needles) if i not in asked]
     gap_of: dict[int, list[tuple[str, int]]] = {}
     gap_of.setdefault(asked_gap, []).extend(("asked", i) for i in asked)
@@ -89,8 +104,20 @@ def _gaps(rng: random.Random, words: list[str], word_tokens: list[int], used: in
     return gap_of
 
 
-def retrieval_item(rng: random.Random, world: World, encode: Encode, filler: ZipfPicker, context_len: int, depth: float,
-                   n_needles: int, n_asked: int, n_same: int, n_sibling: int, digits: int, layout: str = "key_first") -> dict:
+def retrieval_item(
+    rng: random.Random,
+    world: World,
+    encode: Encode,
+    filler: ZipfPicker,
+    context_len: int,
+    depth: float,
+    n_needles: int,
+    n_asked: int,
+    n_same: int,
+    n_sibling: int,
+    digits: int,
+    layout: str = "key_first",
+) -> dict:
     needles, asked, near = _needle_keys(rng, world, n_needles, n_asked, n_same, n_sibling)
     values = [draw_value(rng, digits) for _ in needles]
     asked_values = {values[i] for i in asked}
@@ -109,8 +136,10 @@ def retrieval_item(rng: random.Random, world: World, encode: Encode, filler: Zip
     fixed += sum(len(encode(q)) + len(encode(v)) + len(encode(".")) for q, v in questions)
     budget = context_len - fixed
     if budget < 0:
-        raise ValueError(f"data.probes.retrieval.context_lens: {context_len} is too short for n_needles={n_needles}, "
-                         f"n_asked={n_asked} with the distractors (needs >= {fixed} tokens)")
+        raise ValueError(
+            f"data.probes.retrieval.context_lens: {context_len} is too short for n_needles={n_needles}, "
+            f"n_asked={n_asked} with the distractors (needs >= {fixed} tokens)"
+        )
     words, word_tokens, used = _haystack(rng, encode, filler, budget)
     gap_of = _gaps(rng, words, word_tokens, used, depth, n_needles, asked, len(near))
     out = TokenWriter(encode)
@@ -135,9 +164,18 @@ def retrieval_item(rng: random.Random, world: World, encode: Encode, filler: Zip
         out.add(".")
     if len(out.tokens) > context_len:
         raise AssertionError(f"retrieval item has {len(out.tokens)} tokens > context_len {context_len}")
-    return {"tokens": out.tokens, "answer_spans": answer_spans, "asked_spans": [asked_span[i] for i in asked],
-            "distractor_spans": distractor_spans,
-            "meta": {"context_len": context_len, "depth": float(depth), "n_needles": n_needles, "n_asked": n_asked}}
+    return {
+        "tokens": out.tokens,
+        "answer_spans": answer_spans,
+        "asked_spans": [asked_span[i] for i in asked],
+        "distractor_spans": distractor_spans,
+        "meta": {
+            "context_len": context_len,
+            "depth": float(depth),
+            "n_needles": n_needles,
+            "n_asked": n_asked,
+        },
+    }
 
 
 def retrieval_set(world: World, encode: Encode, cfg: Mapping, seed: int) -> list[dict]:
@@ -152,9 +190,22 @@ def retrieval_set(world: World, encode: Encode, cfg: Mapping, seed: int) -> list
                         continue
                     for k in range(p["items_per_cell"]):
                         rng = random.Random(f"probe-retrieval-{seed}-{L}-{depth}-{n}-{r}-{k}")
-                        items.append(retrieval_item(rng, world, encode, filler, L, depth, n, r, p["same_isle_distractors"],
-                                                    p["sibling_distractors"], cfg["facts"]["value_digits"],
-                                                    cfg["facts"].get("layout", "key_first")))
+                        items.append(
+                            retrieval_item(
+                                rng,
+                                world,
+                                encode,
+                                filler,
+                                L,
+                                depth,
+                                n,
+                                r,
+                                p["same_isle_distractors"],
+                                p["sibling_distractors"],
+                                cfg["facts"]["value_digits"],
+                                cfg["facts"].get("layout", "key_first"),
+                            )
+                        )
     return items
 
 
@@ -181,11 +232,25 @@ def classification_set(world: World, encode: Encode, cfg: Mapping, seed: int, se
                         answer_spans.append(out.add(q["label"]))
                         out.add(".")
                     if len(out.tokens) > seq_len + 1:
-                        raise ValueError(f"data.probes.classification: n_classes={n_classes}, n_demos={n_demos} "
-                                         f"needs {len(out.tokens)} tokens > seq_len + 1 = {seq_len + 1}; allowed: fewer classes, "
-                                         f"demonstrations, queries or noise_features")
-                    items.append({"tokens": out.tokens, "answer_spans": answer_spans, "demo_label_spans": demo_spans,
-                                  "meta": {"n_classes": n_classes, "n_demos": n_demos, "ordering": ordering,
-                                           "episode": episode, "order_index": order_index}})
+                        raise ValueError(
+                            f"data.probes.classification: n_classes={n_classes}, n_demos={n_demos} "
+                            f"needs {len(out.tokens)} tokens > seq_len + 1 = {seq_len + 1}; allowed: "
+                            "fewer classes, "
+                            f"demonstrations, queries or noise_features"
+                        )
+                    items.append(
+                        {
+                            "tokens": out.tokens,
+                            "answer_spans": answer_spans,
+                            "demo_label_spans": demo_spans,
+                            "meta": {
+                                "n_classes": n_classes,
+                                "n_demos": n_demos,
+                                "ordering": ordering,
+                                "episode": episode,
+                                "order_index": order_index,
+                            },
+                        }
+                    )
                 episode += 1
     return items

@@ -40,7 +40,10 @@ def train_tokenizer(texts: Sequence[str], vocab_size: int, model_type: str) -> b
         )
     except RuntimeError as err:  # e.g. "Vocabulary size too high"
         first = str(err).strip().splitlines()[-1] if str(err).strip() else type(err).__name__
-        raise ValueError(f"data.vocab_size={vocab_size}: SentencePiece cannot build this vocabulary from the text ({first})") from None
+        raise ValueError(
+            f"data.vocab_size={vocab_size}: SentencePiece cannot build this vocabulary from the text "
+            f"({first})"
+        ) from None
     return model.getvalue()
 
 

@@ -20,35 +20,167 @@ from dataclasses import dataclass, field
 NAME_LANGUAGES = ("en", "de", "fr", "es", "it", "nl", "sv", "fi", "pl")
 COMMON_ZIPF = 1.0
 
-ONSETS = ["b", "d", "f", "g", "h", "k", "l", "m", "n", "p", "r", "s", "t", "v", "z", "br", "dr", "gr", "kr", "st", "th", "sk"]
+ONSETS = [
+    "b",
+    "d",
+    "f",
+    "g",
+    "h",
+    "k",
+    "l",
+    "m",
+    "n",
+    "p",
+    "r",
+    "s",
+    "t",
+    "v",
+    "z",
+    "br",
+    "dr",
+    "gr",
+    "kr",
+    "st",
+    "th",
+    "sk",
+]
 VOWELS = ["a", "e", "i", "o", "u", "ae", "ou"]
 CODAS = ["", "", "", "n", "r", "l", "s", "th", "m"]
 
 # Domain words of the logbooks, most common first inside each list (order sets the Zipf rank).
 WEATHER_WIND = ["north", "west", "south", "east", "northwest", "southwest", "northeast", "southeast"]
 WEATHER_STRENGTH = ["light", "fresh", "strong", "calm", "gusting", "steady", "rising", "falling", "gale"]
-WEATHER_SKY = ["grey", "clear", "overcast", "fog", "rain", "drizzle", "haze", "squalls", "sleet", "snow", "starlit"]
+WEATHER_SKY = [
+    "grey",
+    "clear",
+    "overcast",
+    "fog",
+    "rain",
+    "drizzle",
+    "haze",
+    "squalls",
+    "sleet",
+    "snow",
+    "starlit",
+]
 SEA_STATE = ["moderate", "slight", "rough", "smooth", "heavy", "choppy", "swelling", "glassy"]
 SHIP_KIND = ["schooner", "sloop", "cutter", "brig", "ketch", "steamer", "trawler", "barque", "lugger", "yawl"]
-SHIP_ACTION = ["passed", "anchored", "signalled", "tacked", "sheltered", "ran", "hove", "drifted", "called", "waited"]
-BEARING = ["inshore", "offshore", "to windward", "to leeward", "off the point", "in the sound", "by the reef", "near the bar"]
-REPAIR_PART = ["lamp", "wick", "lens", "shutter", "stair", "door", "roof", "bell", "horn", "chimney", "railing", "cistern", "window", "clock", "flag mast"]
-REPAIR_ACT = ["mended", "cleaned", "oiled", "painted", "checked", "replaced", "scraped", "tightened", "polished", "tarred"]
+SHIP_ACTION = [
+    "passed",
+    "anchored",
+    "signalled",
+    "tacked",
+    "sheltered",
+    "ran",
+    "hove",
+    "drifted",
+    "called",
+    "waited",
+]
+BEARING = [
+    "inshore",
+    "offshore",
+    "to windward",
+    "to leeward",
+    "off the point",
+    "in the sound",
+    "by the reef",
+    "near the bar",
+]
+REPAIR_PART = [
+    "lamp",
+    "wick",
+    "lens",
+    "shutter",
+    "stair",
+    "door",
+    "roof",
+    "bell",
+    "horn",
+    "chimney",
+    "railing",
+    "cistern",
+    "window",
+    "clock",
+    "flag mast",
+]
+REPAIR_ACT = [
+    "mended",
+    "cleaned",
+    "oiled",
+    "painted",
+    "checked",
+    "replaced",
+    "scraped",
+    "tightened",
+    "polished",
+    "tarred",
+]
 MATERIAL = ["rope", "tar", "brass", "pitch", "canvas", "nails", "lead", "putty", "wire", "oak"]
-GOODS = ["oil", "bread", "coal", "water", "salt", "flour", "candles", "wicks", "tea", "potatoes", "fish", "letters", "tobacco", "rope", "glass"]
+GOODS = [
+    "oil",
+    "bread",
+    "coal",
+    "water",
+    "salt",
+    "flour",
+    "candles",
+    "wicks",
+    "tea",
+    "potatoes",
+    "fish",
+    "letters",
+    "tobacco",
+    "rope",
+    "glass",
+]
 UNITS = ["casks", "sacks", "crates", "barrels", "bundles", "tins", "boxes"]
 COUNT_WORDS = ["two", "three", "four", "five", "six", "seven", "eight", "nine", "ten", "twelve"]
 TIMES = ["dawn", "noon", "dusk", "midnight", "first light", "the morning watch", "the evening watch"]
-MOOD = ["all well", "nothing to report", "quiet night", "lamp burning clear", "glass steady", "keeper weary", "gulls loud", "ice on the gallery"]
+MOOD = [
+    "all well",
+    "nothing to report",
+    "quiet night",
+    "lamp burning clear",
+    "glass steady",
+    "keeper weary",
+    "gulls loud",
+    "ice on the gallery",
+]
 
 FUNCTION_WORDS = ["the", "of", "and", "at", "to", "from", "with", "on", "in", "by"]
 # Attributes that the fact-recall entries give a numeric code to.
 FACT_ATTRIBUTES = ["lamp", "bell", "horn", "flag"]
 # Sightings: the class-deciding feature of classification reports (at least 16 needed).
-SIGHTINGS = ["gull", "seal", "whale", "tern", "otter", "heron", "puffin", "dolphin", "crab", "eel",
-             "cormorant", "shark", "plover", "walrus", "kittiwake", "porpoise", "skua", "gannet", "petrel", "turtle"]
+SIGHTINGS = [
+    "gull",
+    "seal",
+    "whale",
+    "tern",
+    "otter",
+    "heron",
+    "puffin",
+    "dolphin",
+    "crab",
+    "eel",
+    "cormorant",
+    "shark",
+    "plover",
+    "walrus",
+    "kittiwake",
+    "porpoise",
+    "skua",
+    "gannet",
+    "petrel",
+    "turtle",
+]
 # Noise features of a classification report: (feature word, its values).
-REPORT_FEATURES = [("sea", SEA_STATE), ("sky", WEATHER_SKY), ("wind", WEATHER_WIND), ("tide", ["high", "low", "ebbing", "flooding", "slack"])]
+REPORT_FEATURES = [
+    ("sea", SEA_STATE),
+    ("sky", WEATHER_SKY),
+    ("wind", WEATHER_WIND),
+    ("tide", ["high", "low", "ebbing", "flooding", "slack"]),
+]
 
 
 @functools.lru_cache(maxsize=None)
@@ -87,8 +219,24 @@ def build_world(seed: int, n_isle_pairs: int, n_keepers: int, n_ships: int, n_la
     Isles come in ``n_isle_pairs`` pairs sharing their first syllable (e.g. ``Brelo``/``Bresk``).
     """
     rng = random.Random(f"world-{seed}")
-    reserved = set(w for lst in (WEATHER_WIND, WEATHER_STRENGTH, WEATHER_SKY, SEA_STATE, SHIP_KIND, REPAIR_PART,
-                                 MATERIAL, GOODS, UNITS, COUNT_WORDS, FACT_ATTRIBUTES, SIGHTINGS) for w in lst)
+    reserved = set(
+        w
+        for lst in (
+            WEATHER_WIND,
+            WEATHER_STRENGTH,
+            WEATHER_SKY,
+            SEA_STATE,
+            SHIP_KIND,
+            REPAIR_PART,
+            MATERIAL,
+            GOODS,
+            UNITS,
+            COUNT_WORDS,
+            FACT_ATTRIBUTES,
+            SIGHTINGS,
+        )
+        for w in lst
+    )
     used: set[str] = set()
 
     def fresh(make) -> str:
@@ -108,8 +256,8 @@ def build_world(seed: int, n_isle_pairs: int, n_keepers: int, n_ships: int, n_la
             if head not in first_syllables:
                 first_syllables.add(head)
                 break
-        a = fresh(lambda: (head + _syllable(rng, coda=True)).capitalize())
-        b = fresh(lambda: (head + _syllable(rng, coda=True)).capitalize())
+        a = fresh(lambda: (head + _syllable(rng, coda=True)).capitalize())  # noqa: B023 (called at once)
+        b = fresh(lambda: (head + _syllable(rng, coda=True)).capitalize())  # noqa: B023 (called at once)
         isles += [a, b]
         sibling[a], sibling[b] = b, a
     lighthouses = {isle: fresh(lambda: _make_name(rng, 2).capitalize()) for isle in isles}
@@ -124,8 +272,21 @@ def build_world(seed: int, n_isle_pairs: int, n_keepers: int, n_ships: int, n_la
 def filler_lexicon(world: World) -> list[str]:
     """The words filler is drawn from, most common first (rank order for the Zipf weights)."""
     words: list[str] = []
-    for lst in (WEATHER_WIND, WEATHER_STRENGTH, WEATHER_SKY, SEA_STATE, SHIP_KIND, SHIP_ACTION, REPAIR_PART,
-                REPAIR_ACT, MATERIAL, GOODS, UNITS, COUNT_WORDS, FUNCTION_WORDS):
+    for lst in (
+        WEATHER_WIND,
+        WEATHER_STRENGTH,
+        WEATHER_SKY,
+        SEA_STATE,
+        SHIP_KIND,
+        SHIP_ACTION,
+        REPAIR_PART,
+        REPAIR_ACT,
+        MATERIAL,
+        GOODS,
+        UNITS,
+        COUNT_WORDS,
+        FUNCTION_WORDS,
+    ):
         words += [w for w in lst if " " not in w and w not in FACT_ATTRIBUTES]
     # interleave so that rank is not grouped by topic
     rng = random.Random("lexicon-order")
@@ -137,16 +298,64 @@ def filler_lexicon(world: World) -> list[str]:
 
 
 # Words the document templates write besides the lists above (kept here so the vocabulary check sees them).
-TEMPLATE_WORDS = ["log", "of", "light", "on", "keeper", "codes", "check", "report", "sorting", "at", "bound", "for",
-                  "high", "low", "water", "the", "with", "landed", "from", "sea", "sky", "wind", "tide", ",", ".",
-                  "rough", "note", "fair", "copy", ":", "code"]
+TEMPLATE_WORDS = [
+    "log",
+    "of",
+    "light",
+    "on",
+    "keeper",
+    "codes",
+    "check",
+    "report",
+    "sorting",
+    "at",
+    "bound",
+    "for",
+    "high",
+    "low",
+    "water",
+    "the",
+    "with",
+    "landed",
+    "from",
+    "sea",
+    "sky",
+    "wind",
+    "tide",
+    ",",
+    ".",
+    "rough",
+    "note",
+    "fair",
+    "copy",
+    ":",
+    "code",
+]
 
 
 def all_words(world: World) -> list[str]:
     """Every word the generated text can contain, except the digit strings."""
-    lists = (WEATHER_WIND, WEATHER_STRENGTH, WEATHER_SKY, SEA_STATE, SHIP_KIND, SHIP_ACTION, BEARING, REPAIR_PART,
-             REPAIR_ACT, MATERIAL, GOODS, UNITS, COUNT_WORDS, TIMES, MOOD, FACT_ATTRIBUTES, SIGHTINGS, TEMPLATE_WORDS,
-             FUNCTION_WORDS)
+    lists = (
+        WEATHER_WIND,
+        WEATHER_STRENGTH,
+        WEATHER_SKY,
+        SEA_STATE,
+        SHIP_KIND,
+        SHIP_ACTION,
+        BEARING,
+        REPAIR_PART,
+        REPAIR_ACT,
+        MATERIAL,
+        GOODS,
+        UNITS,
+        COUNT_WORDS,
+        TIMES,
+        MOOD,
+        FACT_ATTRIBUTES,
+        SIGHTINGS,
+        TEMPLATE_WORDS,
+        FUNCTION_WORDS,
+    )
     words = [w for lst in lists for phrase in lst for w in phrase.split()]
     words += [v for _, values in REPORT_FEATURES for v in values]
     words += world.isles + list(world.lighthouses.values()) + world.keepers + world.ships + world.labels

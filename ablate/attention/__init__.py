@@ -7,5 +7,12 @@ from .differential import DifferentialAttention, depth_lambda_init
 from .rotary import Rotary
 from .standard import StandardAttention
 
-__all__ = ["AttentionBlock", "ProjectedAttention", "check_block", "StandardAttention", "DifferentialAttention",
-           "Rotary", "depth_lambda_init"]
+__all__ = [
+    "AttentionBlock",
+    "ProjectedAttention",
+    "check_block",
+    "StandardAttention",
+    "DifferentialAttention",
+    "Rotary",
+    "depth_lambda_init",
+]

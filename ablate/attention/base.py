@@ -50,15 +50,26 @@ class AttentionBlock(Protocol):
     def attention_logits(self, x: torch.Tensor) -> torch.Tensor: ...
 
 
-REQUIRED = ("d_model", "q_proj", "k_proj", "v_proj", "out_proj", "forward", "attention_weights", "attention_logits")
+REQUIRED = (
+    "d_model",
+    "q_proj",
+    "k_proj",
+    "v_proj",
+    "out_proj",
+    "forward",
+    "attention_weights",
+    "attention_logits",
+)
 
 
 def check_block(block: nn.Module) -> None:
     """Raise TypeError naming what ``block`` lacks of :class:`AttentionBlock`."""
     missing = [name for name in REQUIRED if not hasattr(block, name)]
     if missing:
-        raise TypeError(f"{type(block).__name__} is not an attention block: it lacks {', '.join(missing)} "
-                        "(see ablate.attention.AttentionBlock)")
+        raise TypeError(
+            f"{type(block).__name__} is not an attention block: it lacks {', '.join(missing)} "
+            "(see ablate.attention.AttentionBlock)"
+        )
     for name in ("q_proj", "k_proj", "v_proj", "out_proj"):
         if not isinstance(getattr(block, name), nn.Linear):
             raise TypeError(f"{type(block).__name__}.{name} must be an nn.Linear")

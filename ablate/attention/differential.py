@@ -8,7 +8,14 @@ import torch
 from torch import nn
 
 from .base import ProjectedAttention
-from .common import causal_chunks, causal_softmax, future_bias, require_bool, require_divisible, require_positive_int
+from .common import (
+    causal_chunks,
+    causal_softmax,
+    future_bias,
+    require_bool,
+    require_divisible,
+    require_positive_int,
+)
 
 LAMBDA_MODES = ("learned", "fixed")
 
@@ -38,7 +45,8 @@ class DifferentialAttention(ProjectedAttention):
         O_i = \left(\mathrm{softmax}\!\left(\frac{Q_{i,1} K_{i,1}^\top}{\sqrt{d}}\right)
               - \lambda\, \mathrm{softmax}\!\left(\frac{Q_{i,2} K_{i,2}^\top}{\sqrt{d}}\right)\right) V_i
 
-        \lambda = \exp(\lambda_{q1} \cdot \lambda_{k1}) - \exp(\lambda_{q2} \cdot \lambda_{k2}) + \lambda_{init}
+        \lambda = \exp(\lambda_{q1} \cdot \lambda_{k1}) - \exp(\lambda_{q2} \cdot \lambda_{k2})
+                  + \lambda_{init}
 
         \mathrm{out} = [\,(1 - \lambda_{init})\,\mathrm{RMSNorm}(O_1); \dots;
                         (1 - \lambda_{init})\,\mathrm{RMSNorm}(O_h)\,]\, W_O
@@ -155,7 +163,13 @@ class DifferentialAttention(ProjectedAttention):
         v = self._values(x).reshape(b * self.n_heads, n, 2 * self.head_dim)
         lam = self.lambda_value().to(x.dtype)
         bias = future_bias(n, x)
-        o = torch.cat([self._chunk_output(q[:, s:e], k[:, :e], v[:, :e], bias[s:e, :e], lam) for s, e in causal_chunks(n)], 1)
+        o = torch.cat(
+            [
+                self._chunk_output(q[:, s:e], k[:, :e], v[:, :e], bias[s:e, :e], lam)
+                for s, e in causal_chunks(n)
+            ],
+            1,
+        )
         return self._finish(o.view(b, self.n_heads, n, 2 * self.head_dim), x.shape)
 
     def _chunk_output(self, q, k, v, bias, lam) -> torch.Tensor:

@@ -8,8 +8,8 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from .common import causal_softmax, require_bool, require_divisible, require_positive_int
 from .base import ProjectedAttention
+from .common import causal_softmax, require_bool, require_divisible, require_positive_int
 
 
 class StandardAttention(ProjectedAttention):
@@ -53,7 +53,9 @@ class StandardAttention(ProjectedAttention):
         require_divisible("d_model", d_model, head_dim, f"head_dim={head_dim}")
         super().__init__(d_model, head_dim, rope_base, layer_index, n_layers)
         self.n_heads = d_model // head_dim
-        self.head_norm = nn.RMSNorm(head_dim, eps=1e-5, elementwise_affine=False) if head_norm else nn.Identity()
+        self.head_norm = (
+            nn.RMSNorm(head_dim, eps=1e-5, elementwise_affine=False) if head_norm else nn.Identity()
+        )
 
     def _split(self, t: torch.Tensor) -> torch.Tensor:
         b, n, _ = t.shape

@@ -40,7 +40,9 @@ def span_mask(length: int, spans: Sequence[Sequence[int]]) -> np.ndarray:
     return mask
 
 
-def span_shares(row: np.ndarray, query: int, asked: Sequence[Sequence[int]], distractors: Sequence[Sequence[int]]) -> tuple[float, float, float]:
+def span_shares(
+    row: np.ndarray, query: int, asked: Sequence[Sequence[int]], distractors: Sequence[Sequence[int]]
+) -> tuple[float, float, float]:
     """Split ``|row[0..query]|`` (one attention row over keys, normalised to sum 1) into
     (asked, distractor, other) shares.
 
@@ -96,7 +98,9 @@ def allocation_summary(items: Sequence[dict], rows: Sequence[np.ndarray | None])
     return out
 
 
-def attention_probe(model: nn.Module, items: Sequence[dict], device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS) -> dict[str, float]:
+def attention_probe(
+    model: nn.Module, items: Sequence[dict], device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS
+) -> dict[str, float]:
     check_items(items)
     scan = scan_items(model, items, batch_tokens, device, predictions=False, rows_for=eligible(items))
     return allocation_summary(items, scan.rows)

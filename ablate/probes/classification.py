@@ -71,7 +71,9 @@ def summarize(items: Sequence[dict], results: Sequence[Sequence[bool]]) -> dict[
             raise ValueError("classification probe: an item has no answer_spans")
         m = item["meta"]
         if m["ordering"] not in ORDERINGS:
-            raise ValueError(f"classification item: meta.ordering={m['ordering']!r} must be one of {', '.join(ORDERINGS)}")
+            raise ValueError(
+                f"classification item: meta.ordering={m['ordering']!r} must be one of {', '.join(ORDERINGS)}"
+            )
         C, K = int(m["n_classes"]), int(m["n_demos"])
         hits = [float(r) for r in res]
         for key in ("acc", f"acc_classes{C}", f"acc_classes{C}_demos{K}", f"acc_{m['ordering']}"):
@@ -101,7 +103,8 @@ def summarize(items: Sequence[dict], results: Sequence[Sequence[bool]]) -> dict[
     return out
 
 
-def classification_probe(model: nn.Module, items: Sequence[dict], device="cpu",
-                         batch_tokens: int = DEFAULT_BATCH_TOKENS) -> dict[str, float]:
+def classification_probe(
+    model: nn.Module, items: Sequence[dict], device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS
+) -> dict[str, float]:
     check_meta(items, META_KEYS, "classification")
     return summarize(items, item_results(model, items, batch_tokens, device))

@@ -35,10 +35,14 @@ def check_spans(tokens: Sequence[int], spans: Sequence[Sequence[int]], what: str
     for span in spans:
         s, e = int(span[0]), int(span[1])
         if not 1 <= s < e <= len(tokens):
-            raise ValueError(f"{what}: span [{s}, {e}) must satisfy 1 <= start < end <= len(tokens) = {len(tokens)}")
+            raise ValueError(
+                f"{what}: span [{s}, {e}) must satisfy 1 <= start < end <= len(tokens) = {len(tokens)}"
+            )
 
 
-def spans_correct(predictions: np.ndarray, tokens: Sequence[int], spans: Sequence[Sequence[int]]) -> list[bool]:
+def spans_correct(
+    predictions: np.ndarray, tokens: Sequence[int], spans: Sequence[Sequence[int]]
+) -> list[bool]:
     """Exact match per span under teacher forcing.
 
     ``predictions[p]`` is the model's argmax at position ``p`` (a guess for ``tokens[p + 1]``).
@@ -91,10 +95,14 @@ def check_item_lengths(items: Sequence[dict], seq_len: int, what: str) -> None:
     for k, item in enumerate(items):
         n = len(item["tokens"])
         if not 2 <= n <= seq_len + 1:
-            raise ValueError(f"{what} item {k}: {n} tokens; must be between 2 and seq_len + 1 = {seq_len + 1}")
+            raise ValueError(
+                f"{what} item {k}: {n} tokens; must be between 2 and seq_len + 1 = {seq_len + 1}"
+            )
 
 
-def item_batches(items: Sequence[dict], batch_tokens: int, device) -> Iterator[tuple[list[int], torch.Tensor, list[int]]]:
+def item_batches(
+    items: Sequence[dict], batch_tokens: int, device
+) -> Iterator[tuple[list[int], torch.Tensor, list[int]]]:
     """Yields ``(indices, ids [b, width], lengths)`` over all items, grouped by length."""
     for idx in length_batches([len(it["tokens"]) - 1 for it in items], batch_tokens):
         ids, lengths = padded_inputs(items, idx, device)

@@ -135,6 +135,8 @@ def drill_probes(model: nn.Module, drill, probes_cfg: dict, device="cpu") -> dic
             tokens, _ = drill.held_out(cfg["val_windows"])
             numbers.update(outlier_probe(model, tokens, device, cfg["batch_tokens"]))
         else:
-            raise ValueError(f"probes.enabled: {name!r} does not run on drill data; allowed: {', '.join(DRILL_PROBES)}")
+            raise ValueError(
+                f"probes.enabled: {name!r} does not run on drill data; allowed: {', '.join(DRILL_PROBES)}"
+            )
         numbers[f"probe_seconds/{name}"] = time.perf_counter() - t0
     return numbers

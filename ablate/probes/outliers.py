@@ -20,7 +20,13 @@ import numpy as np
 import torch
 from torch import nn
 
-from .common import DEFAULT_BATCH_TOKENS, attention_modules, capture_attention_inputs, capture_block_outputs, evaluating
+from .common import (
+    DEFAULT_BATCH_TOKENS,
+    attention_modules,
+    capture_attention_inputs,
+    capture_block_outputs,
+    evaluating,
+)
 
 TOP_K = 10
 
@@ -60,17 +66,25 @@ def causal_entries(logits: torch.Tensor) -> torch.Tensor:
     return logits[..., mask].reshape(-1)
 
 
-def outlier_probe(model: nn.Module, windows: np.ndarray, device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS) -> dict[str, float]:
+def outlier_probe(
+    model: nn.Module, windows: np.ndarray, device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS
+) -> dict[str, float]:
     modules = attention_modules(model)
     windows_t = torch.as_tensor(np.asarray(windows), dtype=torch.long)
     per_batch = max(1, batch_tokens // max(1, windows_t.shape[1] - 1))
     logits_per_layer: list[list[torch.Tensor]] = [[] for _ in modules]
     hidden_per_layer: list[list[torch.Tensor]] = [[] for _ in modules]
-    with evaluating(model), capture_attention_inputs(model) as inputs, capture_block_outputs(model) as outputs:
+    with (
+        evaluating(model),
+        capture_attention_inputs(model) as inputs,
+        capture_block_outputs(model) as outputs,
+    ):
         for start in range(0, windows_t.shape[0], per_batch):
             model(windows_t[start : start + per_batch, :-1].to(device))
             for layer, module in enumerate(modules):
-                logits_per_layer[layer].append(causal_entries(module.attention_logits(inputs[layer])).float().cpu())
+                logits_per_layer[layer].append(
+                    causal_entries(module.attention_logits(inputs[layer])).float().cpu()
+                )
                 hidden_per_layer[layer].append(outputs[layer].reshape(-1).float().cpu())
     out: dict[str, float] = {}
     for layer in range(len(modules)):

@@ -16,7 +16,6 @@ from __future__ import annotations
 from typing import Sequence
 
 import numpy as np
-import torch
 from torch import nn
 
 from .common import attention_modules, capture_attention_inputs, evaluating, padded_inputs
@@ -42,7 +41,9 @@ def head_rows(model: nn.Module, item: dict, layers: int, device) -> tuple[list[i
     with evaluating(model), capture_attention_inputs(model) as inputs:
         ids, _ = padded_inputs([item], [0], device)
         model(ids)
-        rows = [modules[i].attention_weights(inputs[i])[0, :, q, : q + 1].double().cpu().numpy() for i in chosen]
+        rows = [
+            modules[i].attention_weights(inputs[i])[0, :, q, : q + 1].double().cpu().numpy() for i in chosen
+        ]
     return chosen, rows
 
 
@@ -50,8 +51,8 @@ def draw(item: dict, layer_ids: Sequence[int], rows: Sequence[np.ndarray], title
     import matplotlib
 
     matplotlib.use("Agg", force=False)
-    from matplotlib.figure import Figure
     from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
 
     fig = Figure(figsize=(8, 1.8 * len(rows) + 0.6), dpi=80)
     canvas = FigureCanvasAgg(fig)
@@ -70,19 +71,28 @@ def draw(item: dict, layer_ids: Sequence[int], rows: Sequence[np.ndarray], title
         ax.set_ylabel(f"layer {layer}")
     axes[0].set_title(title, fontsize=9)
     axes[-1].set_xlabel("key position (green: asked needle, red: distractors; black: head mean)")
-    fig.subplots_adjust(left=0.11, right=0.98, top=1 - 0.35 / fig.get_figheight(), bottom=0.45 / fig.get_figheight(), hspace=0.35)
+    fig.subplots_adjust(
+        left=0.11,
+        right=0.98,
+        top=1 - 0.35 / fig.get_figheight(),
+        bottom=0.45 / fig.get_figheight(),
+        hspace=0.35,
+    )
     canvas.draw()
     image = np.asarray(canvas.buffer_rgba())[..., :3].copy()
     return image
 
 
-def attention_pictures(model: nn.Module, items: Sequence[dict], n_images: int = 2, layers: int = 2,
-                       device="cpu") -> dict[str, np.ndarray]:
+def attention_pictures(
+    model: nn.Module, items: Sequence[dict], n_images: int = 2, layers: int = 2, device="cpu"
+) -> dict[str, np.ndarray]:
     out = {}
     for k, item in enumerate(picture_items(items, n_images)):
         layer_ids, rows = head_rows(model, item, layers, device)
         m = item["meta"]
-        title = (f"item {k}: length {m['context_len']}, depth {m['depth']:g}, {m['n_needles']} needles; "
-                 f"query position {int(item['answer_spans'][0][0]) - 1}")
+        title = (
+            f"item {k}: length {m['context_len']}, depth {m['depth']:g}, {m['n_needles']} needles; "
+            f"query position {int(item['answer_spans'][0][0]) - 1}"
+        )
         out[f"retrieval_attention/item{k}"] = draw(item, layer_ids, rows, title)
     return out

@@ -67,7 +67,9 @@ def mean_loss(model: nn.Module, windows: np.ndarray, batch_tokens: int, device) 
         return float(window_token_losses(model, windows, batch_tokens, device).mean())
 
 
-def activation_quantized_loss(model: nn.Module, windows: np.ndarray, bits: int, batch_tokens: int, device) -> float:
+def activation_quantized_loss(
+    model: nn.Module, windows: np.ndarray, bits: int, batch_tokens: int, device
+) -> float:
     handles = [
         m.register_forward_pre_hook(lambda _m, args: (fake_quantize_tensor(args[0], bits),) + tuple(args[1:]))
         for m in model.modules()
@@ -80,7 +82,9 @@ def activation_quantized_loss(model: nn.Module, windows: np.ndarray, bits: int, 
             h.remove()
 
 
-def quantization_probe(model: nn.Module, windows: np.ndarray, device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS) -> dict[str, float]:
+def quantization_probe(
+    model: nn.Module, windows: np.ndarray, device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS
+) -> dict[str, float]:
     losses = {"fp32": mean_loss(model, windows, batch_tokens, device)}
     for bits in (8, 4):
         losses[f"w{bits}"] = mean_loss(weight_quantized_copy(model, bits), windows, batch_tokens, device)

@@ -75,12 +75,21 @@ def summarize(items: Sequence[dict], results: Sequence[Sequence[bool]]) -> dict[
     # what copying the value of a random fact in the context (asked, other needle or near miss)
     # scores: (1 / facts) per asked value, all of them right; needs the items' fact spans
     if all(it.get("asked_spans") for it in items):
-        out["retrieval/copy_level"] = float(np.mean([
-            (1.0 / (len(it["asked_spans"]) + len(it.get("distractor_spans", [])))) ** len(it["answer_spans"]) for it in items]))
+        out["retrieval/copy_level"] = float(
+            np.mean(
+                [
+                    (1.0 / (len(it["asked_spans"]) + len(it.get("distractor_spans", []))))
+                    ** len(it["answer_spans"])
+                    for it in items
+                ]
+            )
+        )
     out["retrieval/n_items"] = float(len(items))
     return out
 
 
-def retrieval_probe(model: nn.Module, items: Sequence[dict], device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS) -> dict[str, float]:
+def retrieval_probe(
+    model: nn.Module, items: Sequence[dict], device="cpu", batch_tokens: int = DEFAULT_BATCH_TOKENS
+) -> dict[str, float]:
     check_meta(items, META_KEYS, "retrieval")
     return summarize(items, item_results(model, items, batch_tokens, device))

@@ -16,7 +16,6 @@ import time
 from dataclasses import dataclass
 from typing import Sequence
 
-import numpy as np
 import torch
 from torch import nn
 
@@ -43,8 +42,14 @@ def query_position(item: dict) -> int:
     return int(item["answer_spans"][0][0]) - 1
 
 
-def scan_items(model: nn.Module, items: Sequence[dict], batch_tokens: int, device,
-               predictions: bool = True, rows_for: Sequence[bool] | None = None) -> ScanResult:
+def scan_items(
+    model: nn.Module,
+    items: Sequence[dict],
+    batch_tokens: int,
+    device,
+    predictions: bool = True,
+    rows_for: Sequence[bool] | None = None,
+) -> ScanResult:
     """Forward every item once (grouped by length); keep argmax predictions when ``predictions``
     and, for the items flagged in ``rows_for``, the bounded head-averaged attention row
     (:func:`bounded_rows`) of every layer at :func:`query_position`."""

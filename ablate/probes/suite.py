@@ -26,7 +26,6 @@ import numpy as np
 from torch import nn
 
 from ..checks import positive_int
-
 from . import attention as attention_mod
 from . import retrieval as retrieval_mod
 from .attention import attention_probe
@@ -94,12 +93,16 @@ def _probe_set(corpus, name: str, max_items, seq_len: int) -> list[dict]:
     return items
 
 
-def retrieval_and_attention(model: nn.Module, items: list[dict], device, batch_tokens: int) -> dict[str, float]:
+def retrieval_and_attention(
+    model: nn.Module, items: list[dict], device, batch_tokens: int
+) -> dict[str, float]:
     """Both probes from one forward sweep (:mod:`ablate.probes.scan`). The forward passes are timed
     as ``retrieval``; the extra ``attention_weights`` calls as ``attention``."""
     retrieval_mod.check_meta(items, retrieval_mod.META_KEYS, "retrieval")
     attention_mod.check_items(items)
-    scan = scan_items(model, items, batch_tokens, device, predictions=True, rows_for=attention_mod.eligible(items))
+    scan = scan_items(
+        model, items, batch_tokens, device, predictions=True, rows_for=attention_mod.eligible(items)
+    )
     t0 = time.perf_counter()
     out = retrieval_mod.summarize(items, retrieval_mod.results_from_predictions(items, scan.predictions))
     t1 = time.perf_counter()
@@ -110,13 +113,15 @@ def retrieval_and_attention(model: nn.Module, items: list[dict], device, batch_t
     return out
 
 
-def run_probes(model: nn.Module, corpus, probes_cfg: Mapping, device="cpu") -> tuple[dict[str, float], dict[str, np.ndarray]]:
+def run_probes(
+    model: nn.Module, corpus, probes_cfg: Mapping, device="cpu"
+) -> tuple[dict[str, float], dict[str, np.ndarray]]:
     """Runs the enabled probes under ``torch.no_grad()`` in eval mode (the model's mode is restored).
 
     Returns ``(numbers, images)``: a flat ``name -> float`` dict and ``name -> uint8 [H, W, 3]``.
     """
     cfg = check_config(probes_cfg)
-    seq_len = int(getattr(model, "seq_len"))
+    seq_len = int(model.seq_len)
     bt = cfg["batch_tokens"]
     numbers: dict[str, float] = {}
     images: dict[str, np.ndarray] = {}
@@ -146,13 +151,15 @@ def run_probes(model: nn.Module, corpus, probes_cfg: Mapping, device="cpu") -> t
             numbers.update(timed(name, lambda: attention_probe(model, retrieval_items, device, bt)))
         elif name == "classification":
             items = _probe_set(corpus, "classification", cfg["max_items"], seq_len)
-            numbers.update(timed(name, lambda: classification_probe(model, items, device, bt)))
+            numbers.update(timed(name, lambda: classification_probe(model, items, device, bt)))  # noqa: B023 (called at once)
         elif name == "outliers":
             numbers.update(timed(name, lambda: outlier_probe(model, windows, device, bt)))
         elif name == "quantization":
             numbers.update(timed(name, lambda: quantization_probe(model, windows, device, bt)))
         elif name == "position":
-            numbers.update(timed(name, lambda: position_probe(model, windows, cfg["position_buckets"], device, bt)))
+            numbers.update(
+                timed(name, lambda: position_probe(model, windows, cfg["position_buckets"], device, bt))
+            )
     if cfg["images"]:
         t0 = time.perf_counter()
         images = attention_pictures(model, retrieval_items, cfg["n_images"], cfg["image_layers"], device)

@@ -220,21 +220,26 @@ def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, di
         started=time.time(),
         log=RunLog(info.run_dir),
     )
+    log_start(state, acc.params)
+    return state, saved
+
+
+def log_start(state: RunState, params: int) -> None:
+    """The first line of a run's story: what it is, what it costs, where it runs."""
     state.log.line(
         "start",
-        cell=info.cell,
-        seed=resolved["seed"],
-        data=source.kind,
-        params=acc.params,
-        flops_per_token=acc.flops_per_token,
-        steps=total_steps,
-        tokens_per_step=tokens_per_step,
-        budget_match=resolved["budget"]["match"],
+        cell=state.info.cell,
+        seed=state.resolved["seed"],
+        data=state.source.kind,
+        params=params,
+        flops_per_token=state.flops_per_token,
+        steps=state.total_steps,
+        tokens_per_step=state.tokens_per_step,
+        budget_match=state.resolved["budget"]["match"],
         threads=torch.get_num_threads(),
-        device=str(device),
-        compile="on" if compiled else "off",
+        device=str(state.device),
+        compile="on" if state.summary.compiled else "off",
     )
-    return state, saved
 
 
 def _first_summary(

@@ -79,6 +79,17 @@ def _encode_documents(sp: spm.SentencePieceProcessor, texts: list[str]) -> tuple
     return np.fromiter(flat, dtype=np.uint16, count=int(lengths.sum())), lengths
 
 
+def _split(texts: list[str], kinds: list[str], val_fraction: float, seed: int):
+    """Training texts, validation texts and the training texts' kinds, split by document."""
+    split_rng = random.Random(f"split-{seed}")
+    is_val = [split_rng.random() < val_fraction for _ in texts]
+    if val_fraction > 0 and not any(is_val):
+        is_val[-1] = True  # tiny configs: keep at least one validation document (documented in README)
+    train_texts = [t for t, v in zip(texts, is_val) if not v]
+    val_texts = [t for t, v in zip(texts, is_val) if v]
+    return train_texts, val_texts, [k for k, v in zip(kinds, is_val) if not v]
+
+
 def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> dict:
     """Generate everything into folder ``out``; returns the stats."""
     t0 = time.perf_counter()
@@ -89,13 +100,7 @@ def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> d
     kinds, texts = generate_documents(world, cfg, int(cfg["n_documents"]), f"train-{seed}")
     t_text = time.perf_counter()
 
-    split_rng = random.Random(f"split-{seed}")
-    is_val = [split_rng.random() < float(cfg["val_fraction"]) for _ in texts]
-    if float(cfg["val_fraction"]) > 0 and not any(is_val):
-        is_val[-1] = True  # tiny configs: keep at least one validation document (documented in README)
-    train_texts = [t for t, v in zip(texts, is_val) if not v]
-    val_texts = [t for t, v in zip(texts, is_val) if v]
-    train_kinds = [k for k, v in zip(kinds, is_val) if not v]
+    train_texts, val_texts, train_kinds = _split(texts, kinds, float(cfg["val_fraction"]), seed)
 
     n_tok_docs = min(int(cfg["tokenizer"]["train_documents"]), len(train_texts))
     pick = np.linspace(0, len(train_texts) - 1, n_tok_docs).round().astype(int)
@@ -128,7 +133,25 @@ def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> d
         "classification": classification_set(world, encode, cfg, seed, seq_len),
     }
     t_probe = time.perf_counter()
+    times = {
+        "text": t_text - t0,
+        "tokenizer": t_tok - t_text,
+        "encode": t_ids - t_tok,
+        "probes": t_probe - t_ids,
+    }
+    stats = _stats(
+        cfg, key, sp, train_texts, val_texts, train_kinds, train_ids, train_lens, val_ids, probes, times
+    )
+    _write(out, model_bytes, train_ids, val_ids, train_texts, val_texts, train_kinds, probes, cfg)
+    stats["build_seconds"]["total"] = time.perf_counter() - t0
+    (out / "stats.json").write_text(json.dumps(stats, indent=1))
+    return stats
 
+
+def _stats(
+    cfg, key, sp, train_texts, val_texts, train_kinds, train_ids, train_lens, val_ids, probes, times
+) -> dict:
+    """Sizes and shares of a built corpus (``stats.json``)."""
     tokens_by_kind = {k: 0 for k in cfg["mixture"]}
     docs_by_kind = {k: 0 for k in cfg["mixture"]}
     for k, n in zip(train_kinds, train_lens.tolist()):
@@ -148,14 +171,14 @@ def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> d
         "document_share": {k: docs_by_kind[k] / len(train_texts) for k in docs_by_kind},
         "token_share": {k: tokens_by_kind[k] / n_train_tokens for k in tokens_by_kind},
         "probe_items": {name: len(items) for name, items in probes.items()},
-        "build_seconds": {
-            "text": t_text - t0,
-            "tokenizer": t_tok - t_text,
-            "encode": t_ids - t_tok,
-            "probes": t_probe - t_ids,
-            "total": time.perf_counter() - t0,
-        },
+        "build_seconds": dict(times),
     }
+    return stats
+
+
+def _write(
+    out: Path, model_bytes, train_ids, val_ids, train_texts, val_texts, train_kinds, probes, cfg
+) -> None:
     (out / "tokenizer.model").write_bytes(model_bytes)
     np.save(out / "train_ids.npy", train_ids)
     np.save(out / "val_ids.npy", val_ids)
@@ -164,9 +187,6 @@ def build_corpus(data_cfg: Mapping, seq_len: int, out: Path, key: str = "") -> d
     (out / "train_kinds.txt").write_text("\n".join(train_kinds))
     (out / "probes.json").write_text(json.dumps(probes))
     (out / "data_config.json").write_text(json.dumps(cfg, sort_keys=True, indent=1))
-    stats["build_seconds"]["total"] = time.perf_counter() - t0
-    (out / "stats.json").write_text(json.dumps(stats, indent=1))
-    return stats
 
 
 def _load(path: Path, cfg: dict) -> Corpus:

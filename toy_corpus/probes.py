@@ -104,44 +104,31 @@ def _gaps(
     return gap_of
 
 
-def retrieval_item(
-    rng: random.Random,
-    world: World,
-    encode: Encode,
-    filler: ZipfPicker,
-    context_len: int,
-    depth: float,
-    n_needles: int,
-    n_asked: int,
-    n_same: int,
-    n_sibling: int,
-    digits: int,
-    layout: str = "key_first",
-) -> dict:
-    needles, asked, near = _needle_keys(rng, world, n_needles, n_asked, n_same, n_sibling)
-    values = [draw_value(rng, digits) for _ in needles]
+def _values(rng: random.Random, digits: int, n_needles: int, asked: list[int], n_near: int):
+    """Values of the needles, then of the near misses; a near miss never carries an asked answer,
+    so copying it is always wrong."""
+    values = [draw_value(rng, digits) for _ in range(n_needles)]
     asked_values = {values[i] for i in asked}
     near_values = []
-    for _ in near:  # a near miss never carries an asked answer, so copying it is always wrong
+    for _ in range(n_near):
         v = draw_value(rng, digits)
         while v in asked_values:
             v = draw_value(rng, digits)
         near_values.append(v)
-    header = f"log of {world.lighthouses[rng.choice(world.isles)]} light , codes ."
-    facts = [fact_text(a, i, v, layout) for (a, i), v in zip(needles, values)]
-    near_facts = [fact_text(a, i, v, layout) for (a, i), v in zip(near, near_values)]
-    questions = [(question_text(*needles[i]), values[i]) for i in asked]
+    return values, near_values
 
-    fixed = 1 + len(encode(header)) + sum(len(encode(f)) + len(encode(".")) for f in facts + near_facts)
-    fixed += sum(len(encode(q)) + len(encode(v)) + len(encode(".")) for q, v in questions)
-    budget = context_len - fixed
-    if budget < 0:
-        raise ValueError(
-            f"data.probes.retrieval.context_lens: {context_len} is too short for n_needles={n_needles}, "
-            f"n_asked={n_asked} with the distractors (needs >= {fixed} tokens)"
-        )
-    words, word_tokens, used = _haystack(rng, encode, filler, budget)
-    gap_of = _gaps(rng, words, word_tokens, used, depth, n_needles, asked, len(near))
+
+def _fixed_tokens(encode: Encode, header: str, facts: list[str], questions: list[tuple[str, str]]) -> int:
+    """Tokens of everything but the filler: start token, header, facts and questions with their stops."""
+    fixed = 1 + len(encode(header)) + sum(len(encode(f)) + len(encode(".")) for f in facts)
+    return fixed + sum(len(encode(q)) + len(encode(v)) + len(encode(".")) for q, v in questions)
+
+
+def _haystack_with_facts(
+    encode: Encode, header: str, words: list[str], gap_of: dict, facts: list[str], near_facts: list[str]
+):
+    """The header, then filler words with each fact written into its gap; the spans of the asked
+    facts (by needle) and of the distractors."""
     out = TokenWriter(encode)
     out.add(header)
     asked_span: dict[int, list[int]] = {}
@@ -157,6 +144,40 @@ def retrieval_item(
                 distractor_spans.append(span)
         if g < len(words):
             out.add(words[g])
+    return out, asked_span, distractor_spans
+
+
+def retrieval_item(
+    rng: random.Random,
+    world: World,
+    encode: Encode,
+    filler: ZipfPicker,
+    context_len: int,
+    depth: float,
+    n_needles: int,
+    n_asked: int,
+    n_same: int,
+    n_sibling: int,
+    digits: int,
+    layout: str = "key_first",
+) -> dict:
+    needles, asked, near = _needle_keys(rng, world, n_needles, n_asked, n_same, n_sibling)
+    values, near_values = _values(rng, digits, len(needles), asked, len(near))
+    header = f"log of {world.lighthouses[rng.choice(world.isles)]} light , codes ."
+    facts = [fact_text(a, i, v, layout) for (a, i), v in zip(needles, values)]
+    near_facts = [fact_text(a, i, v, layout) for (a, i), v in zip(near, near_values)]
+    questions = [(question_text(*needles[i]), values[i]) for i in asked]
+
+    fixed = _fixed_tokens(encode, header, facts + near_facts, questions)
+    budget = context_len - fixed
+    if budget < 0:
+        raise ValueError(
+            f"data.probes.retrieval.context_lens: {context_len} is too short for n_needles={n_needles}, "
+            f"n_asked={n_asked} with the distractors (needs >= {fixed} tokens)"
+        )
+    words, word_tokens, used = _haystack(rng, encode, filler, budget)
+    gap_of = _gaps(rng, words, word_tokens, used, depth, n_needles, asked, len(near))
+    out, asked_span, distractor_spans = _haystack_with_facts(encode, header, words, gap_of, facts, near_facts)
     answer_spans = []
     for q, v in questions:
         out.add(q)

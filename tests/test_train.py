@@ -73,6 +73,20 @@ def test_event_file_has_the_tags_with_token_steps(smoke_runs, attention):
     assert flops[steps[-1]] == pytest.approx(summary(run_dir)["train_flops"], rel=1e-6)
 
 
+@pytest.mark.parametrize("attention", ["standard", "differential"])
+def test_train_log_tells_the_run_with_timestamps(smoke_runs, attention):
+    from ablate.runlog import read_log
+
+    lines = read_log(smoke_runs[attention])
+    events = [ln["event"] for ln in lines]
+    assert events[0] == "start" and events[-1] == "finish" and "eval" in events and "checkpoint" in events
+    start, finish = lines[0], lines[-1]
+    assert start["device"] == "cpu" and start["threads"] == 1 and start["compile"] == "off"
+    assert finish["status"] == "completed" and finish["time"] >= start["time"]
+    s = summary(smoke_runs[attention])
+    assert finish["tokens"] == s["tokens"] and finish["val_loss"] == pytest.approx(s["final_val_loss"])
+
+
 def test_interrupted_run_resumes_to_the_same_numbers(tmp_path, cache, smoke_runs):
     root = tmp_path / "resume"
     first = train(["attention=differential", *SMOKE, "runtime.stop_after_steps=9"], root, cache)

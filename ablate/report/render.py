@@ -73,6 +73,11 @@ def verdict_sentence(v: Verdict) -> str:
             f"{signed(v.high)}{u} ({v.n_paired} paired seeds); it rules out lowering it by more than "
             f"{abs(v.low):.3g} or raising it by more than {abs(v.high):.3g}"
         )
+    elif v.status == "no spread" and v.diff == 0:
+        text = (
+            f"{who} and {ref} give the same {v.metric} in every one of {v.n_paired} paired seeds "
+            f"(difference exactly 0): no spread, so no interval"
+        )
     elif v.status == "no spread":
         text = (
             f"{who} {verb} {v.metric} by {abs(v.diff):.3g}{u} against {ref} in every one of {v.n_paired} "

@@ -38,6 +38,7 @@ def stderr_lines(text):
 
 
 # ----------------------------------------------------------------------------- 1. grid record folder
+@pytest.mark.e2e  # runs the real commands in a subprocess
 def test_grid_with_sweep_dir_writes_its_record_there_and_nowhere_else(tmp_path, cache):
     runs, cwd = tmp_path / "runs", tmp_path / "cwd"
     cwd.mkdir()
@@ -66,6 +67,7 @@ def test_grid_with_sweep_dir_writes_its_record_there_and_nowhere_else(tmp_path, 
     assert f"grid finished in {elsewhere}: 2 completed" in proc.stdout
 
 
+@pytest.mark.e2e  # runs the real commands in a subprocess
 def test_output_folder_is_the_folder_hydra_uses_for_a_single_run(tmp_path, cache):
     from ablate.grid import output_folder
 
@@ -131,6 +133,7 @@ def test_sigkill_of_a_lock_holder_leaves_no_stale_lock(tmp_path):
     assert lock_holder(tmp_path) is None and not (tmp_path / ".lock").exists()
 
 
+@pytest.mark.e2e  # runs the real commands in a subprocess
 def test_single_run_of_a_held_folder_exits_2_in_one_line_and_writes_nothing(tmp_path, cache):
     from ablate.records import folder_lock
 
@@ -143,6 +146,7 @@ def test_single_run_of_a_held_folder_exits_2_in_one_line_and_writes_nothing(tmp_
     assert str(run_dir) in line and f"pid {os.getpid()} on {holder['host']} since {holder['since']}" in line
 
 
+@pytest.mark.e2e  # runs the real commands in a subprocess
 def test_two_concurrent_launches_of_one_run_train_once_and_refuse_once(tmp_path, cache):
     # 32 steps: the first run is still training when the second reaches its check
     args = [*FAST, "budget.tokens=32768", f"run_root={tmp_path}"]
@@ -171,6 +175,7 @@ def cell_folder(args):
     return Path(OmegaConf.select(cfg, "hydra.sweep.dir")) / OmegaConf.select(cfg, "hydra.sweep.subdir")
 
 
+@pytest.mark.e2e  # runs the real commands in a subprocess
 def test_grid_skips_a_cell_held_elsewhere_and_lists_it(tmp_path, cache):
     from ablate.records import read_grid
 
@@ -287,6 +292,7 @@ def test_same_size_garbage_that_fails_to_load_is_found_by_its_hash(built, tmp_pa
     assert "probes.json has other content than the manifest records (SHA-256 differs)" in line
 
 
+@pytest.mark.e2e  # runs the real commands in a subprocess
 def test_h2h_corpus_checks_hashes_and_rebuilds_a_changed_text_file(built, tmp_path):
     folder = damaged_copy(built, tmp_path, "train.txt", "truncated")
     text = (built / "train.txt").read_bytes()
@@ -514,6 +520,7 @@ os.fsync = _fsync
 """
 
 
+@pytest.mark.e2e  # runs the real commands in a subprocess
 def test_full_disk_at_a_checkpoint_ends_the_run_in_one_line_and_keeps_the_last_one(tmp_path, cache):
     """The real command with fsync failing (ENOSPC, as delayed allocation reports it) on the
     second checkpoint: sitecustomize (Python docs, site module) installs the failure."""

@@ -65,7 +65,7 @@ def report(grid_dir):
 
 @pytest.mark.e2e
 def test_smoke_grid_report_and_relaunch(tmp_path, cache):
-    proc = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
+    proc = train(["-m", "recipe=quickstart", *SMOKE, "seed=0,1"], tmp_path, cache)
     assert proc.returncode == 0, proc.stderr[-3000:]
     assert "h2h-report" in proc.stdout and "tensorboard --logdir" in proc.stdout
     grid_dir = tmp_path / "quickstart"
@@ -78,7 +78,7 @@ def test_smoke_grid_report_and_relaunch(tmp_path, cache):
     cells = {r["cell"] for r in rows}
     assert any("differential" in c for c in cells) and any("standard" in c for c in cells)
     # relaunching the finished grid trains nothing
-    again = train(["-m", "recipe=quickstart", *SMOKE], tmp_path, cache)
+    again = train(["-m", "recipe=quickstart", *SMOKE, "seed=0,1"], tmp_path, cache)
     assert again.returncode == 0
     assert again.stdout.count("skip") == 4 and "done " not in again.stdout
 

@@ -33,9 +33,9 @@ from .probes import classification_set, retrieval_set
 from .tokenizer import DOC_START_ID, load_tokenizer, train_tokenizer
 from .world import build_world
 
-GENERATOR_VERSION = (
-    2  # bump when generated text changes for the same config (2: names in common use are redrawn)
-)
+# Bump when generated content changes for the same config (2: names in common use are redrawn;
+# 3: classification items no longer carry query_classes).
+GENERATOR_VERSION = 3
 
 
 def default_cache_dir() -> Path:

@@ -39,7 +39,8 @@ from .retrieval import retrieval_probe
 from .scan import scan_items
 
 LOGBOOK_PROBES = ("retrieval", "attention", "outliers", "classification", "quantization", "position")
-PROBE_NAMES = LOGBOOK_PROBES + ("drill_attention",)  # drill_attention runs on drill data only
+PROBE_NAMES = LOGBOOK_PROBES  # the probes of the logbook corpus, run by run_probes
+KNOWN_PROBES = LOGBOOK_PROBES + ("drill_attention",)  # check_config also accepts the drill-only probe
 DEFAULTS = {
     "enabled": list(LOGBOOK_PROBES),
     "images": True,
@@ -66,10 +67,10 @@ def check_config(probes_cfg: Mapping) -> dict:
     cfg = {**DEFAULTS, **dict(probes_cfg)}
     enabled = cfg["enabled"]
     if isinstance(enabled, str) or not all(isinstance(n, str) for n in enabled):
-        raise ValueError(f"probes.enabled={enabled!r}: must be a list drawn from {', '.join(PROBE_NAMES)}")
+        raise ValueError(f"probes.enabled={enabled!r}: must be a list drawn from {', '.join(KNOWN_PROBES)}")
     for name in enabled:
-        if name not in PROBE_NAMES:
-            raise ValueError(f"probes.enabled: {name!r} is not a probe; allowed: {', '.join(PROBE_NAMES)}")
+        if name not in KNOWN_PROBES:
+            raise ValueError(f"probes.enabled: {name!r} is not a probe; allowed: {', '.join(KNOWN_PROBES)}")
     cfg["enabled"] = list(enabled)
     if not isinstance(cfg["images"], bool):
         raise ValueError(f"probes.images={cfg['images']!r}: must be true or false")

@@ -45,8 +45,8 @@ class DrillConfig:
     seed: int = 0
     loss_on: str = "answers"  # "answers": loss on answer positions only; "all": every target
     n_pairs: int = 8  # recall, noisy_recall: key/value pairs in the context
-    n_keys: int = 64  # recall: key symbols; noisy_recall: first-token symbols
-    n_values: int = 64  # recall, noisy_recall: value symbols
+    n_keys: int = 16  # recall: key symbols; noisy_recall: first-token symbols
+    n_values: int = 16  # recall, noisy_recall: value symbols
     n_queries: int = 8  # recall, noisy_recall: queries after the separator
     query_sampling: str = "permutation"  # permutation | replacement | cycles
     filler_len: int = 2  # noisy_recall: filler tokens after every pair

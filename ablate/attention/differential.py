@@ -162,26 +162,8 @@ class DifferentialAttention(ProjectedAttention):
         q, k = self._grouped_queries_keys(x)
         v = self._values(x).reshape(b * self.n_heads, n, 2 * self.head_dim)
         lam = self.lambda_value().to(x.dtype)
-        bias = future_bias(n, x)
-        o = torch.cat(
-            [
-                self._chunk_output(q[:, s:e], k[:, :e], v[:, :e], bias[s:e, :e], lam)
-                for s, e in causal_chunks(n)
-            ],
-            1,
-        )
+        o = CausalDifference.apply(q, k, v, lam, tuple(causal_chunks(n)))
         return self._finish(o.view(b, self.n_heads, n, 2 * self.head_dim), x.shape)
-
-    def _chunk_output(self, q, k, v, bias, lam) -> torch.Tensor:
-        """``(A1 - lambda A2) V`` for one range of queries against the keys up to its end:
-        ``q [2G, rows, d]``, ``k [2G, end, d]``, ``v [G, end, 2d]`` with G = batch * heads,
-        ``bias [rows, end]`` (the causal mask as -inf). Returns ``[G, rows, 2d]``."""
-        rows, d = q.shape[1:]
-        g = v.shape[0]
-        scores = torch.baddbmm(bias, q, k.transpose(1, 2), alpha=d**-0.5)
-        # A1 and A2 of one head stacked as [2 * rows, end]: one product with V gives [A1 V; A2 V].
-        both = torch.bmm(scores.softmax(dim=-1).view(g, 2 * rows, -1), v).view(g, 2, rows, 2 * d)
-        return torch.addcmul(both[:, 0], both[:, 1], -lam)
 
     def attention_weights(self, x: torch.Tensor) -> torch.Tensor:
         q1, k1, q2, k2 = self._queries_keys(x)
@@ -202,3 +184,59 @@ class DifferentialAttention(ProjectedAttention):
         scores = 2.0 * seq_len * (2 * self.n_heads * self.head_dim)
         values = 2 * (2.0 * seq_len * (self.n_heads * 2 * self.head_dim))
         return scores + values
+
+
+class CausalDifference(torch.autograd.Function):
+    r"""``(A1 - lambda A2) V`` over causal ranges of queries, with a hand-written backward.
+
+    Inputs: ``q, k [2G, time, d]`` (G = batch * heads; each head's two groups next to each other),
+    ``v [G, time, 2d]``, ``lam`` (0-d), ``ranges``: the ``(start, end)`` query ranges of
+    :func:`~ablate.attention.common.causal_chunks`. Output ``[G, time, 2d]``.
+
+    For the queries of one range only the keys up to its end are used: one ``baddbmm`` for the
+    scores of both groups (the causal mask as a -inf bias), one softmax, and one ``bmm`` in which
+    each head's two maps are stacked as a ``[2 rows, keys]`` matrix, so ``[A1 V; A2 V]`` comes out
+    of one product with V. The backward is the same chain rule autograd would apply (softmax:
+    ``dS = P * (dP - sum(dP * P))``), but it adds each range's key and value gradients into one
+    buffer: under autograd every range's slice of ``k`` and ``v`` would allocate, zero and copy a
+    full-window gradient of its own. (An in-place ``baddbmm_`` into the buffer's prefix view is
+    slower on CPU: torch runs it as one ``addmm_`` per batch entry.) ``tests/test_attention.py`` checks the gradients
+    against autograd on the published equations.
+    """
+
+    @staticmethod
+    def forward(ctx, q, k, v, lam, ranges):
+        g, n, d = v.shape[0], q.shape[1], q.shape[2]
+        scale = d**-0.5
+        bias = future_bias(n, q)
+        out = v.new_empty(v.shape)
+        saved = []
+        for s, e in ranges:
+            rows = e - s
+            scores = torch.baddbmm(bias[s:e, :e], q[:, s:e], k[:, :e].transpose(1, 2), alpha=scale)
+            p = scores.softmax(dim=-1)
+            both = torch.bmm(p.view(g, 2 * rows, e), v[:, :e]).view(g, 2, rows, 2 * d)
+            out[:, s:e] = torch.addcmul(both[:, 0], both[:, 1], -lam)
+            saved += [p, both[:, 1]]
+        ctx.ranges = ranges
+        ctx.save_for_backward(q, k, v, lam, *saved)
+        return out
+
+    @staticmethod
+    def backward(ctx, grad_out):
+        q, k, v, lam, *saved = ctx.saved_tensors
+        g, d = v.shape[0], q.shape[2]
+        scale = d**-0.5
+        dq, dk, dv = torch.empty_like(q), torch.zeros_like(k), torch.zeros_like(v)
+        dlam = torch.zeros((), dtype=grad_out.dtype, device=grad_out.device)
+        for (s, e), p, a2v in zip(ctx.ranges, saved[0::2], saved[1::2]):
+            rows = e - s
+            go = grad_out[:, s:e]
+            dboth = torch.stack([go, go * -lam], 1).view(g, 2 * rows, 2 * d)
+            dlam -= (go * a2v).sum()
+            dv[:, :e] += torch.bmm(p.view(g, 2 * rows, e).transpose(1, 2), dboth)
+            dp = torch.bmm(dboth, v[:, :e].transpose(1, 2)).view(p.shape)
+            ds = p * (dp - (dp * p).sum(dim=-1, keepdim=True))
+            dq[:, s:e] = torch.bmm(ds, k[:, :e]).mul_(scale)
+            dk[:, :e].add_(torch.bmm(ds.transpose(1, 2), q[:, s:e]), alpha=scale)
+        return dq, dk, dv, dlam.to(lam.dtype).reshape(lam.shape), None

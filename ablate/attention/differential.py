@@ -200,8 +200,8 @@ class CausalDifference(torch.autograd.Function):
     ``dS = P * (dP - sum(dP * P))``), but it adds each range's key and value gradients into one
     buffer: under autograd every range's slice of ``k`` and ``v`` would allocate, zero and copy a
     full-window gradient of its own. (An in-place ``baddbmm_`` into the buffer's prefix view is
-    slower on CPU: torch runs it as one ``addmm_`` per batch entry.) ``tests/test_attention.py`` checks the gradients
-    against autograd on the published equations.
+    slower on CPU: torch runs it as one ``addmm_`` per batch entry.) ``tests/test_attention.py``
+    checks the gradients against autograd on the published equations.
     """
 
     @staticmethod

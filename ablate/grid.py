@@ -70,12 +70,12 @@ def expand_jobs(overrides: list[str], hydra_overrides: list[str] = ()) -> tuple[
     try:
         parsed = parser.parse_overrides(overrides)
     except Exception as exc:
-        raise ConfigError(one_line(exc)) from None
+        raise ConfigError(hydra_message(exc)) from None
     first = [_first_value(o) for o in parsed]
     try:
         base = compose(first + list(hydra_overrides), return_hydra_config=True)
     except Exception as exc:
-        raise ConfigError(one_line(exc)) from None
+        raise ConfigError(hydra_message(exc)) from None
     params = dict(base.hydra.sweeper.params or {})
     cli_keys = {o.get_key_element() for o in parsed}
     merged = list(overrides) + [f"{k}={v}" for k, v in params.items() if k not in cli_keys]
@@ -105,7 +105,7 @@ def output_folder(overrides: list[str], multirun: bool) -> Path:
     except ConfigError:
         raise
     except Exception as exc:
-        raise ConfigError(one_line(exc)) from None
+        raise ConfigError(hydra_message(exc)) from None
     return Path(os.path.abspath(str(folder)))
 
 
@@ -179,7 +179,7 @@ def compose_checked(overrides: list[str]):
     except ConfigError:
         raise
     except Exception as exc:
-        raise ConfigError(one_line(exc)) from None
+        raise ConfigError(hydra_message(exc)) from None
     check_all(cfg)
     return cfg
 
@@ -203,13 +203,13 @@ def check_all(cfg) -> None:
     except Exception as exc:
         cause = exc.__cause__ or exc.__context__
         if isinstance(exc, ValueError) or isinstance(cause, ValueError):
-            message = one_line(cause if isinstance(cause, ValueError) else exc)
+            message = hydra_message(cause if isinstance(cause, ValueError) else exc)
             if "d_model" in message:
                 head_dim = cfg.attention.get("head_dim")
                 message += f" (model.d_model={cfg.model.d_model}, attention.head_dim={head_dim})"
             raise ConfigError(f"attention: {message}") from None
         raise ConfigError(
-            f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {one_line(exc)}"
+            f"attention._target_={cfg.attention.get('_target_')!r}: cannot build it: {hydra_message(exc)}"
         ) from None
     try:
         check_block(block)
@@ -229,8 +229,9 @@ def check_data(cfg) -> None:
             return
         _, length = data_shape(cfg)
     except ValueError as exc:
+        message = hydra_message(exc)
         raise ConfigError(
-            f"data.{one_line(exc)}" if not str(exc).startswith(("data", "seq_len")) else one_line(exc)
+            message if str(exc).startswith(("data", "seq_len")) else f"data.{message}"
         ) from None
     if length > cfg.model.seq_len:
         raise ConfigError(
@@ -248,7 +249,7 @@ def check_probes_fit(cfg) -> None:
     try:
         probes = check_config(OmegaConf.to_container(cfg.probes, resolve=True))
     except ValueError as exc:
-        raise ConfigError(one_line(exc)) from None
+        raise ConfigError(hydra_message(exc)) from None
     drill = cfg.data.get("kind", "logbook") != "logbook"
     allowed = DRILL_PROBES if drill else LOGBOOK_PROBES
     wrong = [name for name in probes["enabled"] if name not in allowed]
@@ -260,7 +261,7 @@ def check_probes_fit(cfg) -> None:
         )
 
 
-def one_line(exc: BaseException) -> str:
+def hydra_message(exc: BaseException) -> str:
     """Hydra's and OmegaConf's messages, squeezed to one readable line."""
     import re
 

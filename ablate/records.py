@@ -30,6 +30,8 @@ import torch
 
 import ablate
 
+from .checks import one_line
+
 CHECKPOINT = "checkpoint.pt"
 SUMMARY = "summary.json"
 GRID = "grid.json"
@@ -373,10 +375,7 @@ def save_checkpoint(path: Path, state: dict) -> None:
 
 def _first_line(exc: BaseException) -> str:
     """The first sentence of an exception's message, for a one-line error."""
-    text = str(exc).strip()
-    if not text:
-        return type(exc).__name__
-    return text.splitlines()[0].split(". ")[0].rstrip(".")[:160]
+    return one_line(exc).split(". ")[0].rstrip(".")
 
 
 def load_checkpoint(path: Path, fingerprint: str) -> dict:

@@ -492,6 +492,16 @@ def open_writer(state: RunState):
     return writer
 
 
+def progress_label(cell: str, seed: int, limit: int = 40) -> str:
+    """A short progress-bar label: the cell's chosen values (``attention=differential,data.n_keys=64``
+    -> ``differential 64``), cut to ``limit`` characters, and the seed, so two runs of one cell
+    sharing a terminal can be told apart."""
+    values = " ".join(part.split("=", 1)[-1] for part in cell.split(",") if part) or "default"
+    if len(values) > limit:
+        values = values[: limit - 3] + "..."
+    return f"{values} seed {seed}"
+
+
 def progress_bar(state: RunState):
     from tqdm import tqdm
 
@@ -500,7 +510,7 @@ def progress_bar(state: RunState):
         initial=state.tokens,
         unit="tok",
         unit_scale=True,
-        desc=state.info.cell or state.run_dir.name,
+        desc=progress_label(state.info.cell or state.run_dir.name, state.resolved["seed"]),
         disable=not state.resolved["runtime"]["progress"],
         dynamic_ncols=True,
         leave=False,

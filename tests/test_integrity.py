@@ -543,3 +543,13 @@ def test_full_disk_at_a_checkpoint_ends_the_run_in_one_line_and_keeps_the_last_o
     # torch.load weights_only=True: tensors and plain containers only (torch.load docs)
     assert torch.load(run_dir / "checkpoint.pt", map_location="cpu", weights_only=True)["step"] == 2
     assert not list(run_dir.glob(".*.partial")) and not (run_dir / "summary.json").exists()
+
+
+def test_progress_label_is_short_and_tells_seeds_apart():
+    from ablate.runner import progress_label
+
+    assert progress_label("attention=differential", 3) == "differential seed 3"
+    assert progress_label("attention=standard,data.n_keys=64", 0) == "standard 64 seed 0"
+    cell = "attention=differential_no_head_norm,budget.tokens=4000000.0,data.query_sampling=replacement"
+    label = progress_label(cell, 1)
+    assert label == "differential_no_head_norm 4000000.0 r... seed 1"

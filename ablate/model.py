@@ -26,6 +26,7 @@ import torch
 from torch import nn
 
 from .checks import positive_int
+from .norm import RMSNorm
 
 AttentionFactory = Callable[[int], nn.Module]
 
@@ -56,9 +57,9 @@ class SwiGLU(nn.Module):
 class Block(nn.Module):
     def __init__(self, d_model: int, attention: nn.Module, ffn_hidden: int, norm_eps: float = 1e-5):
         super().__init__()
-        self.attn_norm = nn.RMSNorm(d_model, eps=norm_eps)
+        self.attn_norm = RMSNorm(d_model, eps=norm_eps)
         self.attention = attention
-        self.ffn_norm = nn.RMSNorm(d_model, eps=norm_eps)
+        self.ffn_norm = RMSNorm(d_model, eps=norm_eps)
         self.ffn = SwiGLU(d_model, ffn_hidden)
 
     def forward(self, h: torch.Tensor) -> torch.Tensor:
@@ -111,7 +112,7 @@ class Decoder(nn.Module):
         self.blocks = nn.ModuleList(
             Block(d_model, attention_factory(i), self.ffn_hidden) for i in range(n_layers)
         )
-        self.final_norm = nn.RMSNorm(d_model, eps=1e-5)
+        self.final_norm = RMSNorm(d_model, eps=1e-5)
         self.head = nn.Linear(d_model, vocab_size, bias=False)
         if tie_embeddings:
             self.head.weight = self.embed.weight

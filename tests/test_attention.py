@@ -111,8 +111,8 @@ def test_standard_matches_torch_multihead_attention():
     assert (block(x) - expected).abs().max().item() <= 1e-5
 
 
-def test_standard_weights_match_sdpa_output():
-    # attention_weights @ V reproduces the fused scaled_dot_product_attention output.
+def test_standard_weights_reproduce_the_block_output():
+    # attention_weights @ V (the explicit softmax map) reproduces the block's chunked output.
     block = StandardAttention(D_MODEL, 0, 1, HEAD_DIM)
     x = torch.randn(2, T, D_MODEL)
     a = block.attention_weights(x)
@@ -305,3 +305,73 @@ def test_full_window_context_gives_one_range_and_the_same_output():
         assert causal_chunks(200) == [(0, 200)]
         assert (block(x) - chunked).abs().max().item() <= 1e-5
     assert len(causal_chunks(200)) == 4  # back to chunks outside the context
+
+
+@pytest.mark.parametrize("time", [40, 130, 256])
+def test_causal_attention_matches_torch_sdpa_output_and_gradients(time):
+    # Reference: torch.nn.functional.scaled_dot_product_attention(is_causal=True), torch's own
+    # implementation of softmax(Q K^T / sqrt(d) + M) V, against CausalAttention over the shipped
+    # causal ranges (4 at 130 and 256 keys, the last one shorter at 130): output to 1e-5, and the
+    # hand-written backward against autograd through SDPA in float64 to 1e-10.
+    from ablate.attention.common import CausalAttention, causal_chunks
+
+    ranges = tuple(causal_chunks(time))
+    gen = torch.Generator().manual_seed(time)
+    shape = (6, time, 16)
+    q, k, v = (torch.randn(shape, dtype=torch.float64, generator=gen, requires_grad=True) for _ in "qkv")
+    grad = torch.randn(6, time, 16, dtype=torch.float64, generator=gen)
+    ours = CausalAttention.apply(q, k, v, ranges)
+    theirs = nn.functional.scaled_dot_product_attention(q, k, v, is_causal=True)
+    assert (ours.float() - theirs.float()).abs().max().item() <= 1e-5
+    g_ours = torch.autograd.grad(ours, (q, k, v), grad)
+    g_theirs = torch.autograd.grad(theirs, (q, k, v), grad)
+    for a, b in zip(g_ours, g_theirs):
+        assert (a - b).abs().max().item() <= 1e-10 * b.abs().max().item()
+
+
+def test_causal_attention_backward_passes_torch_gradcheck():
+    # torch.autograd.gradcheck: the analytic backward against finite differences, uneven ranges.
+    from ablate.attention.common import CausalAttention
+
+    gen = torch.Generator().manual_seed(0)
+    q, k, v = (torch.randn(3, 40, 8, dtype=torch.float64, generator=gen, requires_grad=True) for _ in "qkv")
+    ranges = ((0, 16), (16, 32), (32, 40))
+    assert torch.autograd.gradcheck(lambda *t: CausalAttention.apply(*t, ranges), (q, k, v))
+
+
+def test_rotary_backward_matches_autograd_on_the_complex_form():
+    # Su et al. 2021 (reference_rotary above, complex numbers under autograd) against the
+    # hand-written rotation backward, on a transposed (non-contiguous) input as the blocks pass it.
+    rot = Rotary(HEAD_DIM).double()
+    base = torch.randn(2, 40, 4, HEAD_DIM, dtype=torch.float64, requires_grad=True)
+    grad = torch.randn(2, 4, 40, HEAD_DIM, dtype=torch.float64)
+    ours = rot(base.transpose(1, 2))
+    assert ours.is_contiguous()
+    (g_ours,) = torch.autograd.grad(ours, base, grad)
+    (g_ref,) = torch.autograd.grad(reference_rotary(base.transpose(1, 2)), base, grad)
+    # the angles come from a float32 buffer, so float64 results agree to ~1e-7, not 1e-12
+    assert (g_ours - g_ref).abs().max().item() <= 1e-6
+    assert torch.autograd.gradcheck(lambda t: rot(t), (base.detach()[:1, :6].clone().requires_grad_(),))
+
+
+@pytest.mark.parametrize("affine", [True, False])
+def test_rmsnorm_matches_torch_rms_norm_output_and_gradients(affine):
+    # Reference: torch.nn.functional.rms_norm (torch's own RMSNorm, Zhang & Sennrich 2019) under
+    # autograd, against the hand-written backward of ablate.norm.RMSNorm; plus gradcheck.
+    from ablate.norm import RMSNorm
+
+    torch.manual_seed(0)
+    norm = RMSNorm(24, eps=1e-5, elementwise_affine=affine).double()
+    if affine:
+        with torch.no_grad():
+            norm.weight.copy_(torch.randn(24))
+    x = torch.randn(3, 7, 24, dtype=torch.float64, requires_grad=True)
+    grad = torch.randn(3, 7, 24, dtype=torch.float64)
+    inputs = [x, *norm.parameters()]
+    ours = norm(x)
+    theirs = nn.functional.rms_norm(x, (24,), norm.weight, 1e-5)
+    assert (ours - theirs).abs().max().item() <= 1e-12
+    for a, b in zip(torch.autograd.grad(ours, inputs, grad), torch.autograd.grad(theirs, inputs, grad)):
+        assert (a - b).abs().max().item() <= 1e-12 * max(1.0, b.abs().max().item())
+    assert torch.autograd.gradcheck(lambda t: norm(t), (x[:1, :2].detach().clone().requires_grad_(),))
+    assert isinstance(norm, nn.RMSNorm) and set(norm.state_dict()) == ({"weight"} if affine else set())

@@ -14,14 +14,21 @@ _FULL_WINDOW = contextvars.ContextVar("full_window", default=False)
 
 @contextlib.contextmanager
 def full_window_products():
-    """Inside this context :func:`causal_chunks` returns one range, so chunked blocks compute the
-    full window as a dense kernel does: the counterpart of forcing the math SDPA backend, used
-    where torch's FLOP counter must see the nominal products (``tests/test_compute.py``)."""
+    """Inside this context the shipped blocks compute the products their FLOP accounting counts
+    (the nominal convention): :func:`causal_chunks` returns one range, so nothing of the masked
+    half is skipped, and the differential block forms both value products instead of one product
+    with the difference map (:func:`nominal_products`). Used where torch's FLOP counter must see
+    the nominal products (``tests/test_compute.py``); training never enters it."""
     token = _FULL_WINDOW.set(True)
     try:
         yield
     finally:
         _FULL_WINDOW.reset(token)
+
+
+def nominal_products() -> bool:
+    """True inside :func:`full_window_products`."""
+    return _FULL_WINDOW.get()
 
 
 def require_divisible(name: str, value: int, divisor: int, what: str) -> None:
@@ -64,7 +71,63 @@ def causal_chunks(time: int, min_len: int = 32, max_chunks: int = 4) -> list[tup
     calls, and ``min_len`` 32 / ``max_chunks`` 4 were the fastest on CPU at seq_len 64 and 256
     (PERFORMANCE.md). Inside :func:`full_window_products` it returns ``[(0, time)]``.
     """
-    if _FULL_WINDOW.get():
+    if nominal_products():
         return [(0, time)]
     length = max(min_len, -(-time // max_chunks))
     return [(start, min(start + length, time)) for start in range(0, time, length)]
+
+
+def range_probabilities(q, k, bias, scale: float, start: int, end: int) -> torch.Tensor:
+    """Softmax rows for the queries ``start..end`` over the keys ``0..end``: one ``baddbmm`` with
+    the causal mask as a -inf bias, then one softmax. ``q, k`` are ``[G, time, d]``."""
+    scores = torch.baddbmm(bias[start:end, :end], q[:, start:end], k[:, :end].transpose(1, 2), alpha=scale)
+    return scores.softmax(dim=-1)
+
+
+def add_score_grads(ds, q, k, scale: float, start: int, end: int, dq, dk) -> None:
+    """Write the query gradient of one range and add its key gradient into the shared buffer,
+    from ``ds``, the gradient of that range's pre-softmax scores."""
+    dq[:, start:end] = torch.bmm(ds, k[:, :end]).mul_(scale)
+    dk[:, :end].add_(torch.bmm(ds.transpose(1, 2), q[:, start:end]), alpha=scale)
+
+
+class CausalAttention(torch.autograd.Function):
+    r"""``softmax(Q K^T / sqrt(d) + M) V`` over causal ranges of queries, with a hand-written backward.
+
+    Inputs: ``q, k [G, time, d]``, ``v [G, time, dv]`` (G = batch * heads), ``ranges``: the
+    ``(start, end)`` query ranges of :func:`causal_chunks`. Output ``[G, time, dv]``.
+
+    Each range multiplies its queries only against the keys up to its end, so the products skip
+    most of the masked half of the window. The backward is the chain rule of the softmax with the
+    row term taken from the output (``dS = P * (dP - rowsum(dO * O))``, as fused kernels do), and
+    it adds every range's key and value gradients into one buffer. On CPU this is faster than
+    torch's fused ``scaled_dot_product_attention`` at the shipped sizes (PERFORMANCE.md);
+    ``tests/test_attention.py`` checks output and gradients against the softmax equation.
+    """
+
+    @staticmethod
+    def forward(ctx, q, k, v, ranges):
+        scale = q.shape[2] ** -0.5
+        bias = future_bias(q.shape[1], q)
+        out = v.new_empty(v.shape)
+        saved = []
+        for s, e in ranges:
+            p = range_probabilities(q, k, bias, scale, s, e)
+            out[:, s:e] = torch.bmm(p, v[:, :e])
+            saved.append(p)
+        ctx.ranges = ranges
+        ctx.save_for_backward(q, k, v, out, *saved)
+        return out
+
+    @staticmethod
+    def backward(ctx, grad_out):
+        q, k, v, out, *probs = ctx.saved_tensors
+        scale = q.shape[2] ** -0.5
+        dq, dk, dv = torch.empty_like(q), torch.zeros_like(k), torch.zeros_like(v)
+        row = (grad_out * out).sum(dim=-1, keepdim=True)
+        for (s, e), p in zip(ctx.ranges, probs):
+            go = grad_out[:, s:e]
+            dv[:, :e] += torch.bmm(p.transpose(1, 2), go)
+            ds = torch.bmm(go, v[:, :e].transpose(1, 2)).sub_(row[:, s:e]).mul_(p)
+            add_score_grads(ds, q, k, scale, s, e, dq, dk)
+        return dq, dk, dv, None

@@ -7,11 +7,15 @@ import math
 import torch
 from torch import nn
 
+from ..norm import RMSNorm
 from .base import ProjectedAttention
 from .common import (
+    add_score_grads,
     causal_chunks,
     causal_softmax,
     future_bias,
+    nominal_products,
+    range_probabilities,
     require_bool,
     require_divisible,
     require_positive_int,
@@ -98,7 +102,7 @@ class DifferentialAttention(ProjectedAttention):
         self.lambda_init = resolve_lambda_init(lambda_init, layer_index)
         self.lambda_std = lambda_std
         self.use_head_norm = bool(head_norm)
-        self.head_norm = nn.RMSNorm(2 * head_dim, eps=1e-5, elementwise_affine=False) if head_norm else None
+        self.head_norm = RMSNorm(2 * head_dim, eps=1e-5, elementwise_affine=False) if head_norm else None
         if lambda_mode == "learned":
             self.lambda_q1 = nn.Parameter(torch.randn(head_dim) * lambda_std)
             self.lambda_k1 = nn.Parameter(torch.randn(head_dim) * lambda_std)
@@ -162,8 +166,18 @@ class DifferentialAttention(ProjectedAttention):
         q, k = self._grouped_queries_keys(x)
         v = self._values(x).reshape(b * self.n_heads, n, 2 * self.head_dim)
         lam = self.lambda_value().to(x.dtype)
-        o = CausalDifference.apply(q, k, v, lam, tuple(causal_chunks(n)))
+        if nominal_products():
+            o = self._two_value_products(q, k, v, lam)
+        else:
+            o = CausalDifference.apply(q, k, v, lam, tuple(causal_chunks(n)))
         return self._finish(o.view(b, self.n_heads, n, 2 * self.head_dim), x.shape)
+
+    def _two_value_products(self, q, k, v, lam) -> torch.Tensor:
+        """``A1 V - lambda A2 V`` under autograd, as the FLOP accounting counts it (two value
+        products over the full window); only inside ``full_window_products()``."""
+        p = causal_softmax(torch.bmm(q, k.transpose(1, 2)) * self.head_dim**-0.5)
+        both = torch.bmm(p.view(v.shape[0], -1, p.shape[-1]), v).view(v.shape[0], 2, -1, v.shape[-1])
+        return both[:, 0] - lam * both[:, 1]
 
     def attention_weights(self, x: torch.Tensor) -> torch.Tensor:
         q1, k1, q2, k2 = self._queries_keys(x)
@@ -194,14 +208,17 @@ class CausalDifference(torch.autograd.Function):
     :func:`~ablate.attention.common.causal_chunks`. Output ``[G, time, 2d]``.
 
     For the queries of one range only the keys up to its end are used: one ``baddbmm`` for the
-    scores of both groups (the causal mask as a -inf bias), one softmax, and one ``bmm`` in which
-    each head's two maps are stacked as a ``[2 rows, keys]`` matrix, so ``[A1 V; A2 V]`` comes out
-    of one product with V. The backward is the same chain rule autograd would apply (softmax:
-    ``dS = P * (dP - sum(dP * P))``), but it adds each range's key and value gradients into one
-    buffer: under autograd every range's slice of ``k`` and ``v`` would allocate, zero and copy a
-    full-window gradient of its own. (An in-place ``baddbmm_`` into the buffer's prefix view is
-    slower on CPU: torch runs it as one ``addmm_`` per batch entry.) ``tests/test_attention.py``
-    checks the gradients against autograd on the published equations.
+    scores of both groups (the causal mask as a -inf bias) and one softmax give ``A1, A2``; the
+    difference map ``D = A1 - lambda A2`` is formed once and multiplied with V in one ``bmm``
+    (the same numbers as ``A1 V - lambda A2 V`` in half the value products; the FLOP accounting
+    still counts both products, the nominal convention). The backward is the chain rule written
+    out with the same saving: ``dV = D^T dO``; one product ``dP = dO V^T`` serves both maps
+    (``dA1 = dP``, ``dA2 = -lambda dP``); the softmax step ``dS = A * (dA - rowsum(dA * A))``
+    takes ``s = rowsum(dP * A2)`` and ``rowsum(dO * O) + lambda s`` as its row terms, and
+    ``dlambda = -sum(s)``. Every range's key and value gradients are added into one buffer (under
+    autograd each range's slice would allocate, zero and copy a full-window gradient of its own).
+    ``tests/test_attention.py`` checks output and gradients against autograd on the published
+    equations.
     """
 
     @staticmethod
@@ -212,31 +229,30 @@ class CausalDifference(torch.autograd.Function):
         out = v.new_empty(v.shape)
         saved = []
         for s, e in ranges:
-            rows = e - s
-            scores = torch.baddbmm(bias[s:e, :e], q[:, s:e], k[:, :e].transpose(1, 2), alpha=scale)
-            p = scores.softmax(dim=-1)
-            both = torch.bmm(p.view(g, 2 * rows, e), v[:, :e]).view(g, 2, rows, 2 * d)
-            out[:, s:e] = torch.addcmul(both[:, 0], both[:, 1], -lam)
-            saved += [p, both[:, 1]]
+            p = range_probabilities(q, k, bias, scale, s, e).view(g, 2, e - s, e)
+            dmap = torch.addcmul(p[:, 0], p[:, 1], -lam)
+            out[:, s:e] = torch.bmm(dmap, v[:, :e])
+            saved += [p, dmap]
         ctx.ranges = ranges
-        ctx.save_for_backward(q, k, v, lam, *saved)
+        ctx.save_for_backward(q, k, v, lam, out, *saved)
         return out
 
     @staticmethod
     def backward(ctx, grad_out):
-        q, k, v, lam, *saved = ctx.saved_tensors
+        q, k, v, lam, out, *saved = ctx.saved_tensors
         g, d = v.shape[0], q.shape[2]
         scale = d**-0.5
         dq, dk, dv = torch.empty_like(q), torch.zeros_like(k), torch.zeros_like(v)
+        row = (grad_out * out).sum(dim=-1, keepdim=True)
         dlam = torch.zeros((), dtype=grad_out.dtype, device=grad_out.device)
-        for (s, e), p, a2v in zip(ctx.ranges, saved[0::2], saved[1::2]):
-            rows = e - s
+        for (s, e), p, dmap in zip(ctx.ranges, saved[0::2], saved[1::2]):
             go = grad_out[:, s:e]
-            dboth = torch.stack([go, go * -lam], 1).view(g, 2 * rows, 2 * d)
-            dlam -= (go * a2v).sum()
-            dv[:, :e] += torch.bmm(p.view(g, 2 * rows, e).transpose(1, 2), dboth)
-            dp = torch.bmm(dboth, v[:, :e].transpose(1, 2)).view(p.shape)
-            ds = p * (dp - (dp * p).sum(dim=-1, keepdim=True))
-            dq[:, s:e] = torch.bmm(ds, k[:, :e]).mul_(scale)
-            dk[:, :e].add_(torch.bmm(ds.transpose(1, 2), q[:, s:e]), alpha=scale)
+            dv[:, :e] += torch.bmm(dmap.transpose(1, 2), go)
+            dp = torch.bmm(go, v[:, :e].transpose(1, 2))
+            s2 = (dp * p[:, 1]).sum(dim=-1, keepdim=True)
+            dlam -= s2.sum()
+            ds = torch.empty_like(p)
+            torch.sub(dp, row[:, s:e] + lam * s2, out=ds[:, 0]).mul_(p[:, 0])
+            torch.sub(dp, s2, out=ds[:, 1]).mul_(p[:, 1]).mul_(-lam)
+            add_score_grads(ds.view(2 * g, e - s, e), q, k, scale, s, e, dq, dk)
         return dq, dk, dv, dlam.to(lam.dtype).reshape(lam.shape), None

@@ -5,11 +5,18 @@ from __future__ import annotations
 import math
 
 import torch
-import torch.nn.functional as F
 from torch import nn
 
+from ..norm import RMSNorm
 from .base import ProjectedAttention
-from .common import causal_softmax, require_bool, require_divisible, require_positive_int
+from .common import (
+    CausalAttention,
+    causal_chunks,
+    causal_softmax,
+    require_bool,
+    require_divisible,
+    require_positive_int,
+)
 
 
 class StandardAttention(ProjectedAttention):
@@ -53,9 +60,7 @@ class StandardAttention(ProjectedAttention):
         require_divisible("d_model", d_model, head_dim, f"head_dim={head_dim}")
         super().__init__(d_model, head_dim, rope_base, layer_index, n_layers)
         self.n_heads = d_model // head_dim
-        self.head_norm = (
-            nn.RMSNorm(head_dim, eps=1e-5, elementwise_affine=False) if head_norm else nn.Identity()
-        )
+        self.head_norm = RMSNorm(head_dim, eps=1e-5, elementwise_affine=False) if head_norm else nn.Identity()
 
     def _split(self, t: torch.Tensor) -> torch.Tensor:
         b, n, _ = t.shape
@@ -65,10 +70,11 @@ class StandardAttention(ProjectedAttention):
         return self.rotary(self._split(self.q_proj(x))), self.rotary(self._split(self.k_proj(x)))
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        q, k = self._queries_keys(x)
-        v = self._split(self.v_proj(x))
-        o = F.scaled_dot_product_attention(q, k, v, is_causal=True)
-        o = self.head_norm(o)
+        b, n, _ = x.shape
+        q, k = (t.reshape(b * self.n_heads, n, self.head_dim) for t in self._queries_keys(x))
+        v = self._split(self.v_proj(x)).reshape(q.shape)
+        o = CausalAttention.apply(q, k, v, tuple(causal_chunks(n)))
+        o = self.head_norm(o.view(b, self.n_heads, n, self.head_dim))
         return self.out_proj(o.transpose(1, 2).reshape(x.shape))
 
     def attention_weights(self, x: torch.Tensor) -> torch.Tensor:

@@ -61,15 +61,16 @@ def future_bias(time: int, like: torch.Tensor) -> torch.Tensor:
     return torch.full((time, time), float("-inf"), dtype=like.dtype, device=like.device).triu(1)
 
 
-def causal_chunks(time: int, min_len: int = 32, max_chunks: int = 4) -> list[tuple[int, int]]:
+def causal_chunks(time: int, min_len: int = 32, max_chunks: int = 8) -> list[tuple[int, int]]:
     """Query ranges ``[start, end)`` covering ``0..time``: at most ``max_chunks`` ranges of at
     least ``min_len`` queries (the last may be shorter).
 
     A causal block needs, for the queries of one range, only the keys ``0..end``: the products
     over later keys are all masked. With ``c`` equal ranges the score and value products cover
-    ``(c + 1) / (2c)`` of the full window (5/8 for 4 ranges); more ranges skip more but cost more
-    calls, and ``min_len`` 32 / ``max_chunks`` 4 were the fastest on CPU at seq_len 64 and 256
-    (PERFORMANCE.md). Inside :func:`full_window_products` it returns ``[(0, time)]``.
+    ``(c + 1) / (2c)`` of the full window (9/16 for 8 ranges); more ranges skip more but cost more
+    calls. Ranges of 32 queries (``min_len`` 32, ``max_chunks`` 8: 2 ranges at seq_len 64, 8 at
+    256) were the fastest on CPU for both shipped blocks at both sizes (PERFORMANCE.md). Inside
+    :func:`full_window_products` it returns ``[(0, time)]``.
     """
     if nominal_products():
         return [(0, time)]

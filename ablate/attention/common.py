@@ -85,11 +85,30 @@ def range_probabilities(q, k, bias, scale: float, start: int, end: int) -> torch
     return scores.softmax(dim=-1)
 
 
-def add_score_grads(ds, q, k, scale: float, start: int, end: int, dq, dk) -> None:
-    """Write the query gradient of one range and add its key gradient into the shared buffer,
-    from ``ds``, the gradient of that range's pre-softmax scores."""
+def key_grad_buffers(ranges, *like: torch.Tensor) -> tuple[bool, list[torch.Tensor]]:
+    """Gradient buffers for the key-side inputs of a chunked backward that walks ``ranges`` last
+    first. When the last range reaches the end of the window (as :func:`causal_chunks` ranges
+    do), its products cover every key, so they are written into uninitialised buffers and the
+    zero fill is skipped; returns (whether the first step writes, the buffers)."""
+    full = ranges[-1][1] == like[0].shape[1]
+    return full, [torch.empty_like(t) if full else torch.zeros_like(t) for t in like]
+
+
+def add_into(buffer: torch.Tensor, a, b, end: int, write: bool, alpha=1.0) -> None:
+    """``buffer[:, :end] (+)= alpha * a @ b``: written straight into ``buffer`` when ``write``
+    (then ``end`` is the whole window), added otherwise."""
+    if write:
+        torch.baddbmm(buffer, a, b, beta=0, alpha=alpha, out=buffer)
+    else:
+        buffer[:, :end].add_(torch.bmm(a, b), alpha=alpha)
+
+
+def add_score_grads(ds, q, k, scale: float, start: int, end: int, dq, dk, write: bool = False) -> None:
+    """Write the query gradient of one range and add its key gradient into the shared buffer
+    (or write it, see :func:`add_into`), from ``ds``, the gradient of that range's pre-softmax
+    scores."""
     dq[:, start:end] = torch.bmm(ds, k[:, :end]).mul_(scale)
-    dk[:, :end].add_(torch.bmm(ds.transpose(1, 2), q[:, start:end]), alpha=scale)
+    add_into(dk, ds.transpose(1, 2), q[:, start:end], end, write, alpha=scale)
 
 
 class CausalAttention(torch.autograd.Function):
@@ -124,11 +143,13 @@ class CausalAttention(torch.autograd.Function):
     def backward(ctx, grad_out):
         q, k, v, out, *probs = ctx.saved_tensors
         scale = q.shape[2] ** -0.5
-        dq, dk, dv = torch.empty_like(q), torch.zeros_like(k), torch.zeros_like(v)
+        dq = torch.empty_like(q)
+        write, (dk, dv) = key_grad_buffers(ctx.ranges, k, v)
         row = (grad_out * out).sum(dim=-1, keepdim=True)
-        for (s, e), p in zip(ctx.ranges, probs):
+        for (s, e), p in reversed(list(zip(ctx.ranges, probs))):
             go = grad_out[:, s:e]
-            dv[:, :e] += torch.bmm(p.transpose(1, 2), go)
+            add_into(dv, p.transpose(1, 2), go, e, write)
             ds = torch.bmm(go, v[:, :e].transpose(1, 2)).sub_(row[:, s:e]).mul_(p)
-            add_score_grads(ds, q, k, scale, s, e, dq, dk)
+            add_score_grads(ds, q, k, scale, s, e, dq, dk, write)
+            write = False
         return dq, dk, dv, None

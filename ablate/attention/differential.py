@@ -10,10 +10,12 @@ from torch import nn
 from ..norm import RMSNorm
 from .base import ProjectedAttention
 from .common import (
+    add_into,
     add_score_grads,
     causal_chunks,
     causal_softmax,
     future_bias,
+    key_grad_buffers,
     nominal_products,
     range_probabilities,
     require_bool,
@@ -242,17 +244,19 @@ class CausalDifference(torch.autograd.Function):
         q, k, v, lam, out, *saved = ctx.saved_tensors
         g, d = v.shape[0], q.shape[2]
         scale = d**-0.5
-        dq, dk, dv = torch.empty_like(q), torch.zeros_like(k), torch.zeros_like(v)
+        dq = torch.empty_like(q)
+        write, (dk, dv) = key_grad_buffers(ctx.ranges, k, v)
         row = (grad_out * out).sum(dim=-1, keepdim=True)
         dlam = torch.zeros((), dtype=grad_out.dtype, device=grad_out.device)
-        for (s, e), p, dmap in zip(ctx.ranges, saved[0::2], saved[1::2]):
+        for (s, e), p, dmap in reversed(list(zip(ctx.ranges, saved[0::2], saved[1::2]))):
             go = grad_out[:, s:e]
-            dv[:, :e] += torch.bmm(dmap.transpose(1, 2), go)
+            add_into(dv, dmap.transpose(1, 2), go, e, write)
             dp = torch.bmm(go, v[:, :e].transpose(1, 2))
             s2 = (dp * p[:, 1]).sum(dim=-1, keepdim=True)
             dlam -= s2.sum()
             ds = torch.empty_like(p)
             torch.sub(dp, row[:, s:e] + lam * s2, out=ds[:, 0]).mul_(p[:, 0])
             torch.sub(dp, s2, out=ds[:, 1]).mul_(p[:, 1]).mul_(-lam)
-            add_score_grads(ds.view(2 * g, e - s, e), q, k, scale, s, e, dq, dk)
+            add_score_grads(ds.view(2 * g, e - s, e), q, k, scale, s, e, dq, dk, write)
+            write = False
         return dq, dk, dv, dlam.to(lam.dtype).reshape(lam.shape), None

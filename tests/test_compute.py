@@ -41,9 +41,10 @@ def test_non_embedding_params_closed_form_and_kaplan(attention):
 
 @pytest.mark.parametrize("attention", NAMED_ATTENTION)
 def test_flops_per_token_match_torch_flop_counter(attention):
-    # Reference: torch.utils.flop_counter.FlopCounterMode on one forward+backward pass. The math
-    # SDPA backend is forced because the counter does not see inside the fused CPU kernel, and
-    # the differential block's causal chunks are turned off: both then run the nominal full window.
+    # Reference: torch.utils.flop_counter.FlopCounterMode on one forward+backward pass. Inside
+    # full_window_products() the shipped blocks compute the nominal products their accounting
+    # counts (no causal ranges; differential's two value products); the math SDPA backend is
+    # forced for any block that calls SDPA, since the counter does not see inside the fused kernel.
     model = tiny(attention, "model.seq_len=128")
     with sdpa_kernel(SDPBackend.MATH), full_window_products():
         measured = measure_flops_per_token(model)

@@ -319,7 +319,7 @@ def test_causal_attention_matches_torch_sdpa_output_and_gradients(time):
     gen = torch.Generator().manual_seed(time)
     shape = (6, time, 16)
     q, k, v = (torch.randn(shape, dtype=torch.float64, generator=gen, requires_grad=True) for _ in "qkv")
-    grad = torch.randn(6, time, 16, dtype=torch.float64, generator=gen)
+    grad = torch.randn(shape, dtype=torch.float64, generator=gen)
     ours = CausalAttention.apply(q, k, v, ranges)
     theirs = nn.functional.scaled_dot_product_attention(q, k, v, is_causal=True)
     assert (ours.float() - theirs.float()).abs().max().item() <= 1e-5

@@ -26,6 +26,7 @@ import torch
 from torch import nn
 
 from .checks import positive_int
+from .loss import head_loss
 from .norm import RMSNorm
 
 AttentionFactory = Callable[[int], nn.Module]
@@ -138,11 +139,24 @@ class Decoder(nn.Module):
             elif id(p) in owners and hasattr(owners[id(p)][0], "init_parameter") and generator is not None:
                 owners[id(p)][0].init_parameter(owners[id(p)][1], p, generator)
 
-    def forward(self, ids: torch.Tensor) -> torch.Tensor:
+    def forward(
+        self, ids: torch.Tensor, targets: torch.Tensor | None = None, mask: torch.Tensor | None = None
+    ) -> torch.Tensor:
+        """``ids [batch, time]`` -> logits ``[batch, time, vocab]``; with ``targets [batch, time]``
+        instead the mean cross-entropy over the targets (over those where ``mask``, bool
+        ``[batch, time]``, is true), computed with the head by :func:`ablate.loss.head_loss`
+        without storing the logits."""
         h = self.embed(ids)
         for block in self.blocks:
             h = block(h)
-        return self.head(self.final_norm(h))
+        h = self.final_norm(h)
+        if targets is None:
+            if mask is not None:
+                raise ValueError("a loss mask needs targets")
+            return self.head(h)
+        if mask is not None:
+            return head_loss(h[mask], self.head.weight, targets[mask])
+        return head_loss(h.reshape(-1, self.d_model), self.head.weight, targets.reshape(-1))
 
     def attention_blocks(self) -> list[nn.Module]:
         return [block.attention for block in self.blocks]

@@ -143,3 +143,96 @@ def test_an_a_a_pair_trains_to_the_same_loss_exactly():
             opt.step()
         losses.append(loss.item())
     assert losses[0] == losses[1]
+
+
+# --- the training loss: head and cross-entropy in one pass (ablate.loss) -----------------------
+# Reference: torch's nn.functional.cross_entropy over the logits h @ W^T (an outside
+# implementation of the same function), in float64 so only the summation order can differ.
+
+
+@pytest.mark.parametrize("n, rows", [(37, 8), (64, 64), (5, 64)])
+def test_head_loss_matches_torch_cross_entropy(n, rows):
+    from ablate.loss import head_loss
+
+    gen = torch.Generator().manual_seed(n)
+    h = torch.randn(n, 12, generator=gen, dtype=torch.float64, requires_grad=True)
+    w = torch.randn(50, 12, generator=gen, dtype=torch.float64, requires_grad=True)
+    t = torch.randint(0, 50, (n,), generator=gen)
+    ref = nn.functional.cross_entropy(h @ w.t(), t)
+    (ref * 3.0).backward()  # an upstream factor must reach both gradients
+    ref_h, ref_w = h.grad.clone(), w.grad.clone()
+    h.grad = w.grad = None
+    got = head_loss(h, w, t, rows=rows)
+    (got * 3.0).backward()
+    assert abs(got.item() - ref.item()) < 1e-12
+    torch.testing.assert_close(h.grad, ref_h, rtol=1e-10, atol=1e-12)
+    torch.testing.assert_close(w.grad, ref_w, rtol=1e-10, atol=1e-12)
+    with torch.no_grad():  # the loss-only path gives the same number
+        assert abs(head_loss(h, w, t, rows=rows).item() - ref.item()) < 1e-12
+
+
+def test_head_loss_gradcheck_and_errors():
+    from ablate.loss import head_loss
+
+    gen = torch.Generator().manual_seed(1)
+    h = torch.randn(7, 4, generator=gen, dtype=torch.float64, requires_grad=True)
+    w = torch.randn(9, 4, generator=gen, dtype=torch.float64, requires_grad=True)
+    t = torch.randint(0, 9, (7,), generator=gen)
+    assert torch.autograd.gradcheck(lambda a, b: head_loss(a, b, t, rows=3), (h, w))
+    with pytest.raises(ValueError, match="do not match"):
+        head_loss(h, w[:, :3], t)
+    with pytest.raises(ValueError, match="targets"):
+        head_loss(h, w, t[:3])
+    assert math.isnan(head_loss(h[:0], w, t[:0]).item())  # empty, as cross_entropy gives
+
+
+@pytest.mark.parametrize("masked", [False, True])
+def test_decoder_loss_equals_cross_entropy_of_its_logits(masked):
+    model = make(StandardAttention).double()
+    ids = torch.randint(0, VOCAB, (3, 17), generator=torch.Generator().manual_seed(2))
+    mask = torch.rand(3, 16, generator=torch.Generator().manual_seed(3)) < 0.4 if masked else None
+    logits = model(ids[:, :-1])
+    targets = ids[:, 1:]
+    ref = (
+        nn.functional.cross_entropy(logits[mask], targets[mask])
+        if masked
+        else nn.functional.cross_entropy(logits.reshape(-1, VOCAB), targets.reshape(-1))
+    )
+    ref.backward()
+    ref_grads = {k: p.grad.clone() for k, p in model.named_parameters()}
+    model.zero_grad(set_to_none=True)
+    got = model(ids[:, :-1], targets, mask)
+    got.backward()
+    assert abs(got.item() - ref.item()) < 1e-12
+    for k, p in model.named_parameters():
+        torch.testing.assert_close(p.grad, ref_grads[k], rtol=1e-9, atol=1e-12, msg=k)
+    with pytest.raises(ValueError, match="needs targets"):
+        model(ids[:, :-1], mask=torch.ones(3, 16, dtype=torch.bool))
+
+
+def test_optimizer_step_is_the_adamw_update():
+    # Loshchilov & Hutter 2019 ("Decoupled Weight Decay Regularization", Algorithm 2) as torch's
+    # AdamW documentation writes it: theta <- theta (1 - lr wd); m, v moving averages;
+    # theta <- theta - lr * (m / (1 - b1^t)) / (sqrt(v / (1 - b2^t)) + eps). Decay on 2-D tensors only.
+    from ablate.optim import build_optimizer
+
+    lr, (b1, b2), wd, eps = 1e-2, (0.9, 0.95), 0.1, 1e-8
+    model = make(StandardAttention)
+    opt = build_optimizer(model, lr, (b1, b2), wd, eps)
+    params = [p for p in model.parameters()]
+    theta = [p.detach().clone().double() for p in params]
+    m = [torch.zeros_like(t) for t in theta]
+    v = [torch.zeros_like(t) for t in theta]
+    gen = torch.Generator().manual_seed(4)
+    for step in range(1, 4):
+        for i, p in enumerate(params):
+            p.grad = torch.randn(p.shape, generator=gen)
+            g = p.grad.double()
+            decay = wd if p.dim() >= 2 else 0.0
+            theta[i] = theta[i] * (1 - lr * decay)
+            m[i] = b1 * m[i] + (1 - b1) * g
+            v[i] = b2 * v[i] + (1 - b2) * g * g
+            theta[i] = theta[i] - lr * (m[i] / (1 - b1**step)) / ((v[i] / (1 - b2**step)).sqrt() + eps)
+        opt.step()
+    for p, t in zip(params, theta):
+        torch.testing.assert_close(p.detach().double(), t, rtol=1e-5, atol=1e-6)

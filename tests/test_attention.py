@@ -351,6 +351,7 @@ def test_rotary_backward_matches_autograd_on_the_complex_form():
     (g_ref,) = torch.autograd.grad(reference_rotary(base.transpose(1, 2)), base, grad)
     # the angles come from a float32 buffer, so float64 results agree to ~1e-7, not 1e-12
     assert (g_ours - g_ref).abs().max().item() <= 1e-6
+    assert g_ours.is_contiguous()  # the gradient came back in the input's layout: no copy on the way
     assert torch.autograd.gradcheck(lambda t: rot(t), (base.detach()[:1, :6].clone().requires_grad_(),))
 
 

@@ -50,23 +50,41 @@ class RotaryFunction(torch.autograd.Function):
     r"""With ``x = [x_1, x_2]`` (the two halves of the channels) and the half-width ``c, s``:
     ``y = [x_1 c - x_2 s,\; x_2 c + x_1 s]``; the backward is the rotation by the opposite angle,
     ``dx = [g_1 c + g_2 s,\; g_2 c - g_1 s]``. Written out so that each direction is four
-    fused multiply-adds into one contiguous buffer, with no concatenated copies."""
+    fused multiply-adds into one buffer, with no concatenated copies: contiguous in the forward,
+    in the layout of ``x`` in the backward."""
 
     @staticmethod
     def forward(ctx, x, cos, sin):
         ctx.save_for_backward(cos, sin)
+        # The gradient is written in the layout of x (a head split of a projection's output is a
+        # transposed view): the projection's backward then takes it without a copy.
+        ctx.layout = x.stride() if _dense(x) else None
         return _rotate(x, cos, sin, 1.0)
 
     @staticmethod
     def backward(ctx, grad):
         cos, sin = ctx.saved_tensors
-        return _rotate(grad, cos, sin, -1.0), None, None
+        return _rotate(grad, cos, sin, -1.0, ctx.layout), None, None
 
 
-def _rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor, sign: float) -> torch.Tensor:
+def _dense(x: torch.Tensor) -> bool:
+    """True when ``x`` covers its storage span exactly once (a permutation of a contiguous tensor)."""
+    order = sorted(range(x.dim()), key=lambda i: x.stride(i))
+    expected = 1
+    for i in order:
+        if x.shape[i] != 1 and x.stride(i) != expected:
+            return False
+        expected *= x.shape[i]
+    return True
+
+
+def _rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor, sign: float, layout=None) -> torch.Tensor:
     half = x.shape[-1] // 2
     x1, x2 = x[..., :half], x[..., half:]
-    out = torch.empty(x.shape, dtype=x.dtype, device=x.device)
+    if layout is None:
+        out = torch.empty(x.shape, dtype=x.dtype, device=x.device)
+    else:
+        out = torch.empty_strided(x.shape, layout, dtype=x.dtype, device=x.device)
     torch.mul(x1, cos, out=out[..., :half])
     torch.mul(x2, cos, out=out[..., half:])
     out[..., :half].addcmul_(x2, sin, value=-sign)

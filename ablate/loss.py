@@ -26,7 +26,9 @@ def chunk_rows(vocab: int, target_bytes: int = 16 << 20, element_bytes: int = 4)
     return max(64, target_bytes // (element_bytes * vocab))
 
 
-def head_loss(h: torch.Tensor, weight: torch.Tensor, targets: torch.Tensor, rows: int | None = None) -> torch.Tensor:
+def head_loss(
+    h: torch.Tensor, weight: torch.Tensor, targets: torch.Tensor, rows: int | None = None
+) -> torch.Tensor:
     """Mean cross-entropy of ``h [N, d] @ weight[V, d]^T`` against ``targets [N]`` (int64 ids).
 
     Where autograd needs a gradient (grad mode on and ``h`` or ``weight`` requiring one) the

@@ -334,10 +334,9 @@ def test_summary_records_versions_commit_and_tree_state(reference):
 
 
 def test_optimizer_step_is_skipped_on_a_non_finite_gradient():
-    from ablate.optim import build_optimizer, training_step
-
     from ablate.attention import StandardAttention
     from ablate.model import Decoder
+    from ablate.optim import build_optimizer, training_step
 
     torch.manual_seed(0)
     model = Decoder(8, 8, 1, 4, lambda i: StandardAttention(8, i, 1, head_dim=4))

@@ -57,25 +57,15 @@ class RotaryFunction(torch.autograd.Function):
     def forward(ctx, x, cos, sin):
         ctx.save_for_backward(cos, sin)
         # The gradient is written in the layout of x (a head split of a projection's output is a
-        # transposed view): the projection's backward then takes it without a copy.
-        ctx.layout = x.stride() if _dense(x) else None
+        # transposed view): the projection's backward then takes it without a copy. torch's own
+        # rule for empty_like picks that layout (x's stride order, dense), read off a meta tensor.
+        ctx.layout = torch.empty_like(x, device="meta").stride()
         return _rotate(x, cos, sin, 1.0)
 
     @staticmethod
     def backward(ctx, grad):
         cos, sin = ctx.saved_tensors
         return _rotate(grad, cos, sin, -1.0, ctx.layout), None, None
-
-
-def _dense(x: torch.Tensor) -> bool:
-    """True when ``x`` covers its storage span exactly once (a permutation of a contiguous tensor)."""
-    order = sorted(range(x.dim()), key=lambda i: x.stride(i))
-    expected = 1
-    for i in order:
-        if x.shape[i] != 1 and x.stride(i) != expected:
-            return False
-        expected *= x.shape[i]
-    return True
 
 
 def _rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor, sign: float, layout=None) -> torch.Tensor:

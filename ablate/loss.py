@@ -76,8 +76,9 @@ class HeadLoss(torch.autograd.Function):
     @staticmethod
     def forward(ctx, h, weight, targets, rows: int):
         dh, dw = torch.empty_like(h), torch.empty_like(weight)
-        if h.shape[0] == 0:
-            dh.zero_(), dw.zero_()
+        if h.shape[0] == 0:  # no chunk writes them
+            dh.zero_()
+            dw.zero_()
         loss = _chunked(h, weight, targets, rows, dh, dw)
         ctx.save_for_backward(dh, dw)
         return loss

@@ -21,13 +21,14 @@ test: $(STAMP)
 	$(BIN)/ruff format --check .
 	$(BIN)/python -m pytest -q
 
-# The loss grid (quickstart) and the mechanism grid (induction drill), then one report for both;
+# The loss question (recipe head_norm) and the mechanism question (recipe induction_factorial),
+# each a 2x2 factorial of the attention map and the per-head norm, then one report for both;
 # ends with the tensorboard command to view the curves.
 demo: $(STAMP)
 	$(BIN)/h2h-corpus
-	$(BIN)/h2h-train -m recipe=quickstart
-	$(BIN)/h2h-train -m recipe=induction
-	$(BIN)/h2h-report runs/quickstart runs/induction
+	$(BIN)/h2h-train -m recipe=head_norm
+	$(BIN)/h2h-train -m recipe=induction_factorial
+	$(BIN)/h2h-report runs/head_norm runs/induction_factorial
 	@echo ""
 	@echo "curves: $(BIN)/tensorboard --logdir runs"
 

@@ -14,29 +14,25 @@ from pathlib import Path
 import torch
 from omegaconf import OmegaConf
 
+from .cells import Cell, level_text
 from .compute import account, ratios
 from .schema import ConfigError, check_ranges
 
-NOT_DESIGN = ("seed", "recipe", "run_root")
-
 
 @dataclass
-class Cell:
-    name: str
+class GridCell:
+    """One cell of a grid in the pre-flight: its design choices (``cell``: every design override
+    of its first job until :func:`name_by_swept_keys` keeps only the swept ones), that job's
+    overrides and config, and its accounting."""
+
+    cell: Cell
     overrides: list
     cfg: object
     accounting: object = None
 
-
-def cell_name(overrides: list[str]) -> str:
-    """The design choices of a job: its overrides without seed, recipe and runtime/hydra/grid keys."""
-    keep = []
-    for o in overrides:
-        key = o.split("=", 1)[0].lstrip("+~")
-        if key in NOT_DESIGN or key.startswith(("hydra.", "runtime.", "grid.")):
-            continue
-        keep.append(o)
-    return ",".join(sorted(keep)) or "default"
+    @property
+    def full(self) -> Cell:
+        return Cell.from_overrides(self.overrides)
 
 
 def sweep_jobs(parsed: list) -> list[list[str]]:
@@ -58,10 +54,14 @@ def sweep_jobs(parsed: list) -> list[list[str]]:
     return [list(job) for job in itertools.product(*axes.values())]
 
 
-def expand_jobs(overrides: list[str], hydra_overrides: list[str] = ()) -> tuple[list[list[str]], object]:
+def expand_jobs(
+    overrides: list[str], hydra_overrides: list[str] = ()
+) -> tuple[list[list[str]], object, list[list[str]]]:
     """Every job's override list for ``h2h-train -m <overrides>``, recipe sweeps included;
     ``hydra_overrides`` (the command line's ``hydra.*`` ones, e.g. ``hydra.sweeper.params.seed=0``)
-    take part in the compose as they do in Hydra's, but are not job overrides."""
+    take part in the compose as they do in Hydra's, but are not job overrides. Also returns the
+    launch branches: one per group of nested factors (see :func:`nested_branches`), ``[[]]``
+    when there are none."""
     from hydra.core.override_parser.overrides_parser import OverridesParser
 
     from .config import compose
@@ -79,7 +79,44 @@ def expand_jobs(overrides: list[str], hydra_overrides: list[str] = ()) -> tuple[
     params = dict(base.hydra.sweeper.params or {})
     cli_keys = {o.get_key_element() for o in parsed}
     merged = list(overrides) + [f"{k}={v}" for k, v in params.items() if k not in cli_keys]
-    return sweep_jobs(parser.parse_overrides(merged)), base
+    crossed = sweep_jobs(parser.parse_overrides(merged))
+    branches = nested_branches(base.grid.get("factors"), crossed)
+    if branches == [[]]:
+        return crossed, base, branches
+    jobs = [job for b in branches for job in sweep_jobs(parser.parse_overrides(merged + b))]
+    return jobs, base, branches
+
+
+def nested_branches(spec, crossed: list[list[str]]) -> list[list[str]]:
+    """Launch branches for factors that exist only at one level of another
+    (``grid.factors.<key>: {reference, levels, within: 'attention=differential'}``): Hydra's
+    sweeper only crosses keys, so the grid launches once with the ``within`` key at its other
+    levels and once at the ``within`` level with the nested keys swept. ``[[]]`` without nesting."""
+    nested = {
+        k: v
+        for k, v in (OmegaConf.to_container(spec) if spec is not None else {}).items()
+        if isinstance(v, dict) and v.get("within")
+    }
+    if not nested:
+        return [[]]
+    withins = {Cell.parse(str(v["within"])) for v in nested.values()}
+    if len(withins) != 1 or len(next(iter(withins))) != 1:
+        raise ConfigError(
+            "grid.factors: nested factors must share one 'within' of one key=value "
+            f"(e.g. within: attention=differential); got {', '.join(sorted(map(str, withins)))}"
+        )
+    ((key, level),) = next(iter(withins)).items
+    for name, entry in nested.items():
+        if not entry.get("levels"):
+            raise ConfigError(
+                f"grid.factors.{name}: a nested factor lists its 'levels' (e.g. [learned, fixed])"
+            )
+    swept = list(dict.fromkeys(Cell.from_overrides(j).get(key) for j in crossed))
+    outside = [v for v in swept if v not in (None, level)]
+    inside = [f"{key}={level}"] + [
+        f"{name}={','.join(map(level_text, entry['levels']))}" for name, entry in nested.items()
+    ]
+    return ([[f"{key}={','.join(outside)}"]] if outside else []) + [inside]
 
 
 def output_folder(overrides: list[str], multirun: bool) -> Path:
@@ -136,20 +173,33 @@ def accounting_of(cfg):
         return account(build_model(cfg, vocab_size), seq_len)
 
 
-def check_cells(jobs: list[list[str]]) -> list[Cell]:
-    """Compose and check every job; group jobs into cells; account each cell."""
-    cells: dict[str, Cell] = {}
+def check_cells(jobs: list[list[str]]) -> list[GridCell]:
+    """Compose and check every job; group jobs into cells (by their design overrides, the seed
+    left out) and account each cell; each cell is then named by the keys the grid sweeps."""
+    cells: dict[Cell, GridCell] = {}
     for job in jobs:
         cfg = compose_checked(job)
-        name = cell_name(job)
-        if name not in cells:
-            cells[name] = Cell(name, job, cfg, accounting_of(cfg))
-    return list(cells.values())
+        cell = Cell.from_overrides(job)
+        if cell not in cells:
+            cells[cell] = GridCell(cell, job, cfg, accounting_of(cfg))
+    found = list(cells.values())
+    swept = swept_keys(found)
+    for c in found:
+        c.cell = c.cell.only(swept)
+    return found
+
+
+def swept_keys(cells: list[GridCell]) -> list[str]:
+    """The design keys whose value differs between cells: the grid's design keys (the others
+    are settings of the whole grid)."""
+    fulls = [c.full.as_dict() for c in cells]
+    keys = {k for d in fulls for k in d}
+    return sorted(k for k in keys if len({d.get(k) for d in fulls}) > 1)
 
 
 def baseline_overrides(run_overrides: list[str], baseline: str) -> list[str]:
     """A run's overrides with the baseline cell's ``key=value`` pairs in place of the same keys."""
-    base = override_dict(baseline.split(","))
+    base = Cell.parse(baseline).as_dict()
     return [o for o in run_overrides if o.split("=", 1)[0] not in base] + [
         f"{k}={v}" for k, v in base.items()
     ]
@@ -290,77 +340,68 @@ def hydra_message(exc: BaseException) -> str:
     return " | ".join(keep[:3]) if keep else type(exc).__name__
 
 
-def find_baseline(cells: list[Cell], baseline: str | None) -> Cell:
-    """The cell whose overrides include every ``key=value`` of ``baseline`` (the recipe names
-    it without the overrides that all cells share, such as ``budget=smoke``)."""
+def find_baseline(cells: list[GridCell], baseline: str | None) -> GridCell:
+    """The cell whose design overrides include every ``key=value`` of ``baseline`` (the recipe
+    names it without the overrides that all cells share, such as ``budget=smoke``)."""
+    names = "; ".join(str(c.cell) for c in cells)
     if not baseline:
         raise ConfigError(
             "grid.baseline: not set; a grid needs the cell every comparison is made against, e.g. "
-            f"grid.baseline='attention=standard' (quoted); cells: {'; '.join(c.name for c in cells)}"
+            f"grid.baseline='attention=standard' (quoted); cells: {names}"
         )
-    wanted = set(baseline.split(","))
-    matches = [c for c in cells if wanted <= set(c.name.split(","))]
+    try:
+        wanted = Cell.parse(baseline)
+    except ValueError as exc:
+        raise ConfigError(f"grid.baseline={baseline!r}: {exc}; cells: {names}") from None
+    matches = [c for c in cells if c.full.contains(wanted)]
     if len(matches) != 1:
         raise ConfigError(
             f"grid.baseline={baseline!r}: matches {len(matches)} cells of this grid, needs exactly one; "
-            f"cells: {'; '.join(c.name for c in cells)}"
+            f"cells: {names}"
         )
     return matches[0]
 
 
-def fairness_table(cells: list[Cell], baseline: str) -> list[dict]:
-    base = next(c for c in cells if c.name == baseline)
-    rows = []
-    for c in cells:
-        row_ratios = ratios(c.accounting, base.accounting)
-        rows.append({"cell": c.name, **c.accounting.as_dict(), **row_ratios})
-    return rows
+def fairness_table(cells: list[GridCell], base: GridCell) -> list[dict]:
+    return [
+        {"cell": str(c.cell), **c.accounting.as_dict(), **ratios(c.accounting, base.accounting)}
+        for c in cells
+    ]
 
 
-def override_dict(overrides: list[str]) -> dict[str, str]:
-    """``key -> value`` of the ``key=value`` overrides (deletions and the like are left out)."""
-    return dict(o.split("=", 1) for o in overrides if "=" in o)
-
-
-def _as_dict(overrides: list[str]) -> dict:
-    """The design part of ``override_dict``: without seed, recipe and run_root."""
-    return {k: v for k, v in override_dict(overrides).items() if k not in NOT_DESIGN}
-
-
-def differing_keys(a: list[str], b: list[str]) -> set[str]:
-    da, db = _as_dict(a), _as_dict(b)
+def differing_keys(a: GridCell, b: GridCell) -> set[str]:
+    da, db = a.full.as_dict(), b.full.as_dict()
     return {k for k in set(da) | set(db) if da.get(k) != db.get(k)}
 
 
-def matched_reference(cell: Cell, base: Cell, cells: list[Cell], unequal_axes: list[str]) -> Cell | None:
+def matched_reference(
+    cell: GridCell, base: GridCell, cells: list[GridCell], unequal_axes: list[str]
+) -> GridCell | None:
     """The cell to check ``cell`` against: the baseline's choices, with the unequal-on-purpose
     axes set to this cell's values (so a size sweep compares each design at the same size)."""
-    want = _as_dict(base.overrides)
-    mine = _as_dict(cell.overrides)
-    for axis in unequal_axes:
-        want.pop(axis, None)
-        if axis in mine:
-            want[axis] = mine[axis]
-    return next((c for c in cells if _as_dict(c.overrides) == want), None)
+    mine = cell.full.as_dict()
+    want = base.full.without(*unequal_axes).with_values({a: mine[a] for a in unequal_axes if a in mine})
+    return next((c for c in cells if c.full == want), None)
 
 
-def check_fairness(cells: list[Cell], baseline: str, tolerance: float, unequal_axes: list[str]) -> list[dict]:
+def check_fairness(
+    cells: list[GridCell], base: GridCell, tolerance: float, unequal_axes: list[str]
+) -> list[dict]:
     """Raise ConfigError with a table when a cell's parameter count differs by more than
     ``tolerance`` from the baseline's at the same values of the axes declared unequal on purpose
     (``unequal_axes``); every other axis is still checked."""
-    rows = fairness_table(cells, baseline)
-    base = next(c for c in cells if c.name == baseline)
+    rows = fairness_table(cells, base)
     bad = []
     for c, row in zip(cells, rows):
         reference = matched_reference(c, base, cells, unequal_axes)
         if reference is None:  # no like-for-like cell: only declared axes may differ from the baseline
             off = abs(row["params_ratio"] - 1)
-            if off > tolerance and not differing_keys(c.overrides, base.overrides) <= set(unequal_axes):
-                bad.append((row, base.name, row["params_ratio"]))
+            if off > tolerance and not differing_keys(c, base) <= set(unequal_axes):
+                bad.append((row, base.cell, row["params_ratio"]))
             continue
         ratio = c.accounting.params / reference.accounting.params
         if abs(ratio - 1) > tolerance:
-            bad.append((row, reference.name, ratio))
+            bad.append((row, reference.cell, ratio))
     if bad:
         raise ConfigError(
             f"grid is not parameter-matched within grid.tolerance={tolerance}: "

@@ -102,8 +102,11 @@ class GridRecord:
 
     ``baseline`` is the cell every comparison is made against; ``primary_metric`` is the one number
     the verdict is about and ``resolution`` the interval half-width (in its units) that counts as
-    resolved; ``max_seeds`` caps the seed rounds (``rounds`` ran so far). ``fairness`` holds one row
-    per cell (parameters and FLOPs against the baseline).
+    resolved; ``max_seeds`` caps the seed rounds (``rounds`` ran so far). ``varied`` lists the
+    design keys the grid sweeps (a cell is its values of those keys; ``ablate.cells.Cell``);
+    ``factors`` the factors of a factorial grid (``ablate.factors.Factor.to_dict``), empty for a
+    pairwise grid. ``fairness`` holds one row per cell (parameters and FLOPs against the
+    baseline).
     """
 
     name: str
@@ -115,6 +118,8 @@ class GridRecord:
     max_seeds: int | None = None
     rounds: int = 1
     varied: list = field(default_factory=list)
+    factors: list = field(default_factory=list)
+    branches: list = field(default_factory=lambda: [[]])  # extra overrides per launch (nested factors)
     unequal_axes: list = field(default_factory=list)
     tolerance: float = 0.02
     sweep: dict | None = None

@@ -22,6 +22,7 @@ import torch
 from omegaconf import OmegaConf
 
 from . import records
+from .cells import level_text
 from .checks import one_line
 from .compute import account, steps_from_budget
 from .optim import build_optimizer, lr_at, training_step
@@ -129,7 +130,23 @@ def hparams_of(choices: dict, resolved: dict) -> dict:
             values[f"attention/{key}"] = value
     values["optim/lr"] = resolved["optim"]["lr"]
     values["seed"] = resolved["seed"]
-    return values
+    return {**values, **factor_levels(choices, resolved)}
+
+
+def factor_levels(choices: dict, resolved: dict) -> dict[str, str]:
+    """``factor/<key>`` -> this run's level of each factor the recipe declares (``grid.factors``):
+    the group choice for a config group, else the value at that path; ``-`` where the factor does
+    not exist (a nested factor outside its level), so TensorBoard's HPARAMS view filters by factor."""
+    out = {}
+    for key in (resolved.get("grid") or {}).get("factors") or {}:
+        if key in choices:
+            value = choices[key]
+        else:
+            value = resolved
+            for part in key.split("."):
+                value = value.get(part) if isinstance(value, dict) else None
+        out[f"factor/{key}"] = "-" if value is None else level_text(value)
+    return out
 
 
 def block_scalars(model) -> dict[str, float]:

@@ -79,6 +79,8 @@ class GridSchema:
     resolution: float = 0.01
     max_seeds: Optional[int] = None
     sweep: Optional[Dict[str, Any]] = None
+    # design key -> reference level, or {reference, within, name}; see ablate/factors.py
+    factors: Optional[Dict[str, Any]] = None
 
 
 @dataclass

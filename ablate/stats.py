@@ -50,24 +50,31 @@ def mean_ci(values, level: float = 0.95) -> tuple[float, float, float]:
     return mean, mean - half, mean + half
 
 
+def mean_test(values, level: float = 0.95) -> tuple[float, float, float, float]:
+    """Mean of ``values``, its t interval, and the one-sample t-test p-value against zero
+    (scipy.stats.ttest_1samp). Returns ``(mean, low, high, p)``; with one value the bounds and p
+    are NaN, and with zero spread (up to float rounding) p is NaN (the t statistic is undefined)
+    while the interval collapses to the mean."""
+    d = _sample(values)
+    mean, low, high = mean_ci(d, level)
+    # Spread at rounding level (e.g. a constant offset stored in floats) counts as no spread.
+    if d.size < 2 or float(np.std(d, ddof=1)) <= 1e-12 * max(float(np.abs(d).max()), 1e-300):
+        return mean, low, high, math.nan
+    return mean, low, high, float(stats.ttest_1samp(d, 0.0).pvalue)
+
+
 def paired_difference(a, b, level: float = 0.95) -> tuple[float, float, float, float]:
     """Mean of ``a - b`` over pairs, its t interval, and the paired t-test p-value.
 
-    ``a[i]`` and ``b[i]`` must come from the same seed. Returns ``(mean, low, high, p)``; with one
-    pair the bounds and p are NaN, and with zero spread in the differences (up to float rounding)
-    p is NaN (the t statistic is undefined) while the interval collapses to the mean.
+    ``a[i]`` and ``b[i]`` must come from the same seed. Returns ``(mean, low, high, p)`` as
+    :func:`mean_test` of the differences (the paired t-test is the one-sample test of the
+    differences: scipy.stats.ttest_rel).
     """
     x = _sample(a)
     y = _sample(b)
     if x.shape != y.shape:
         raise ValueError(f"paired samples differ in length: {x.size} vs {y.size}")
-    d = x - y
-    mean, low, high = mean_ci(d, level)
-    # Spread at rounding level (e.g. a constant offset stored in floats) counts as no spread.
-    if x.size < 2 or float(np.std(d, ddof=1)) <= 1e-12 * max(float(np.abs(d).max()), 1e-300):
-        return mean, low, high, math.nan
-    p = float(stats.ttest_rel(x, y).pvalue)
-    return mean, low, high, p
+    return mean_test(x - y, level)
 
 
 def seeds_needed(std: float, halfwidth: float, level: float = 0.95) -> tuple[int, int]:

@@ -16,6 +16,7 @@ import sys
 from pathlib import Path
 
 from . import records
+from .cells import Cell
 from .checks import one_line
 from .config import CONF_DIR
 from .schema import ConfigError
@@ -54,44 +55,66 @@ def preflight(argv: list[str]) -> records.GridRecord | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
     from omegaconf import OmegaConf
 
-    from .grid import (
-        check_cells,
-        check_fairness,
-        compose_checked,
-        expand_jobs,
-        find_baseline,
-        output_folder,
-        override_dict,
-    )
+    from .grid import check_cells, check_fairness, compose_checked, expand_jobs, find_baseline, output_folder
 
     multirun, design, hydra_side = _split_argv(argv)
     if not multirun:
         compose_checked(design)
         _check_free(output_folder(design + hydra_side, multirun=False))
         return None
-    jobs, base = expand_jobs(design, hydra_side)
+    jobs, base, branches = expand_jobs(design, hydra_side)
     cells = check_cells(jobs)
     grid = base.grid
-    baseline = find_baseline(cells, grid.baseline).name
-    rows = check_fairness(cells, baseline, grid.tolerance, list(grid.unequal_axes))
-    settings = [override_dict(c.overrides) for c in cells]
-    varied = sorted({k for d in settings for k in d if len({other.get(k) for other in settings}) > 1})
+    factors = grid_factors(grid, cells)
+    base_cell = find_baseline(cells, grid.baseline or reference_cell(factors))
+    rows = check_fairness(cells, base_cell, grid.tolerance, list(grid.unequal_axes))
     return records.GridRecord(
         name=str(grid.name),
         dir=str(output_folder(design + hydra_side, multirun=True)),
-        baseline=baseline,
+        baseline=str(base_cell.cell),
         recipe=base.hydra.runtime.choices.get("recipe"),
         primary_metric=str(grid.primary_metric),
         resolution=float(grid.resolution),
         max_seeds=grid.max_seeds,
-        varied=[v for v in varied if v != "seed"],
+        varied=sorted({k for c in cells for k in c.cell.keys()}),
+        factors=[f.to_dict() for f in factors],
         unequal_axes=list(grid.unequal_axes),
         tolerance=grid.tolerance,
         sweep=OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None,
         jobs=len(jobs),
-        seeds=sorted({int(override_dict(j).get("seed", base.seed)) for j in jobs}),
+        branches=branches,
+        seeds=sorted({_seed_of(j, base.seed) for j in jobs}),
         fairness=rows,
     )
+
+
+def _seed_of(job: list[str], default: int) -> int:
+    seeds = [o.split("=", 1)[1] for o in job if o.split("=", 1)[0].lstrip("+") == "seed"]
+    return int(seeds[-1]) if seeds else int(default)
+
+
+def grid_factors(grid, cells) -> list:
+    """The factors of a grid whose recipe declares ``grid.factors`` (else none: a pairwise grid)."""
+    from omegaconf import OmegaConf
+
+    from .factors import FactorError, factors_of
+
+    if grid.get("factors") is None:
+        return []
+    try:
+        return factors_of(OmegaConf.to_container(grid.factors), [c.cell for c in cells])
+    except FactorError as exc:
+        raise ConfigError(str(exc)) from None
+
+
+def reference_cell(factors) -> str | None:
+    """The cell with every factor at its reference level (a nested factor counts where its
+    ``within`` cell is itself at reference): a factorial grid's default baseline."""
+    if not factors:
+        return None
+    refs = Cell.of({f.key: f.reference for f in factors if not len(f.within)})
+    nested = {f.key: f.reference for f in factors if len(f.within) and refs.contains(f.within)}
+    return str(refs.with_values(nested))
 
 
 def _check_free(run_dir: Path) -> None:
@@ -120,7 +143,6 @@ def _task_impl(cfg) -> records.RunSummary | None:
     from hydra.core.hydra_config import HydraConfig
     from hydra.types import RunMode
 
-    from .grid import cell_name
     from .runner import RunInfo
 
     hc = HydraConfig.get()
@@ -128,7 +150,10 @@ def _task_impl(cfg) -> records.RunSummary | None:
     run_dir = Path(hc.runtime.output_dir)
     choices = {k: v for k, v in hc.runtime.choices.items() if not k.startswith("hydra") and v is not None}
     overrides = list(hc.overrides.task)
-    info = RunInfo(run_dir=run_dir, choices=choices, cell=cell_name(overrides), overrides=overrides)
+    # in a grid, the cell is the run's values of the keys the grid sweeps (the pre-flight's grid.json)
+    record = records.read_grid(Path(os.path.abspath(hc.sweep.dir))) if in_grid else None
+    cell = Cell.from_overrides(overrides, record.varied if record else None)
+    info = RunInfo(run_dir=run_dir, choices=choices, cell=str(cell), overrides=overrides)
     n_jobs = hc.launcher.get("n_jobs") if "n_jobs" in hc.launcher else None
     if n_jobs is not None and n_jobs <= 0:
         n_jobs = os.cpu_count()
@@ -297,12 +322,23 @@ def _main(argv: list[str] | None = None) -> None:
             records.write_grid(grid)
             print(f"grid {grid.name}: {grid.jobs} runs, baseline {grid.baseline}, into {grid.dir}")
             print(format_table(grid.fairness), flush=True)
-    _launch(argv)
+    launch = _launcher(grid.branches if grid is not None else [[]])
+    launch(argv)
     if grid is not None:
         from .rounds import more_rounds
 
-        more_rounds(grid, argv, _launch)
+        more_rounds(grid, argv, launch)
         _grid_epilogue(Path(grid.dir))
+
+
+def _launcher(branches: list[list[str]]):
+    """Launch the command line once per branch (one branch unless the grid nests factors)."""
+
+    def launch(argv: list[str]) -> None:
+        for branch in branches:
+            _launch(argv + branch)
+
+    return launch
 
 
 def _launch(argv: list[str]) -> None:

@@ -5,7 +5,9 @@ import csv
 import subprocess
 import sys
 
+import numpy as np
 import pytest
+from scipy import stats as sps
 from trainer_helpers import ROOT, SMALL_DATA, run_dirs, summary, train
 
 from ablate.schema import ConfigError
@@ -135,3 +137,46 @@ def test_every_shipped_recipe_passes_its_preflight(recipe):
     grid = preflight(["-m", f"recipe={recipe}"])
     assert grid.jobs >= 2
     assert grid.baseline in {row["cell"] for row in grid.fairness}
+
+
+@pytest.mark.e2e
+def test_factorial_grid_effects_equal_a_hand_computation_from_the_summaries(tmp_path, cache):
+    # The 2x2 of map x head norm at the smoke budget, 3 seeds, through h2h-train -m and h2h-report.
+    proc = train(["-m", "recipe=head_norm", *SMOKE, "seed=0,1,2"], tmp_path, cache)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    grid_dir = tmp_path / "head_norm"
+    loss = {}
+    for run in run_dirs(grid_dir):
+        s = summary(run)
+        loss[(s["choices"]["attention"], "head_norm=True" in s["cell"], s["seed"])] = s["final_val_loss"]
+    assert len(loss) == 12
+    out = report(grid_dir)
+    assert out.returncode == 0, out.stderr[-2000:]
+    first = out.stdout.splitlines()[:4]
+    assert first[0].startswith("head_norm: final_val_loss (lower is better): factorial")
+    rows = {r["cell"]: r for r in csv.DictReader((grid_dir / "summary.csv").open()) if r["kind"] == "effect"}
+    # Hand computation per seed (Box, Hunter & Hunter 2005, ch. 5: effects as contrasts; the
+    # interaction as the difference of the two simple effects), then a t interval across seeds.
+    y = lambda a, h, s: loss[(a, h, s)]  # noqa: E731
+    head = [
+        (
+            (y("standard", True, s) - y("standard", False, s))
+            + (y("differential", True, s) - y("differential", False, s))
+        )
+        / 2
+        for s in range(3)
+    ]
+    inter = [
+        (y("differential", True, s) - y("standard", True, s))
+        - (y("differential", False, s) - y("standard", False, s))
+        for s in range(3)
+    ]
+    for name, values in (("head_norm True vs False", head), ("attention x head_norm", inter)):
+        row = rows[name]
+        low, high = sps.t.interval(0.95, 2, loc=np.mean(values), scale=sps.sem(values))  # reference: scipy
+        assert float(row["mean"]) == pytest.approx(np.mean(values), abs=1e-12)
+        assert (float(row["ci_low"]), float(row["ci_high"])) == (
+            pytest.approx(low, abs=1e-12),
+            pytest.approx(high, abs=1e-12),
+        )
+        assert any(line.strip().startswith(name) for line in first)

@@ -82,14 +82,14 @@ def _probes(attention, i):
     return probes
 
 
-def _grid_json(root, baseline="attention=standard", **extra):
+def _grid_json(root, baseline="attention=standard", varied=("attention",), **extra):
     records.write_grid(
         records.GridRecord(
             name=root.name,
             dir=str(root),
             baseline=baseline,
             recipe="test_recipe",
-            varied=["attention"],
+            varied=list(varied),
             seeds=SEEDS,
             **extra,
         )
@@ -158,7 +158,7 @@ def _row(rows, cell, metric):
 
 
 def _obj(rep, cell, metric):
-    found = [r for r in rep.rows if r.cell == cell and r.metric == metric]
+    found = [r for r in rep.rows if str(r.cell) == cell and r.metric == metric]
     assert len(found) == 1, (cell, metric)
     return found[0]
 
@@ -252,7 +252,9 @@ def test_metadata_is_context_not_tested(built):
     assert (
         kinds["copy/copy_level"] == kinds["probe_seconds/copy"] == "context" and kinds["copy/acc"] == "metric"
     )
-    level = next(c for c in rep.context if c.key == "copy/copy_level" and c.cell == "attention=differential")
+    level = next(
+        c for c in rep.context if c.key == "copy/copy_level" and str(c.cell) == "attention=differential"
+    )
     assert level.values == [0.25, 0.25, 0.25]
 
 
@@ -261,7 +263,7 @@ def test_verdict_on_primary_metric_from_grid_record(built):
     (v,) = rep.verdicts
     d = np.array(LOSSES["differential"]) - np.array(LOSSES["standard"])
     low, high = sps.t.interval(0.95, 2, loc=d.mean(), scale=sps.sem(d))  # reference: scipy
-    assert (v.metric, v.cell, v.reference, v.n_paired) == (
+    assert (v.metric, str(v.cell), str(v.reference), v.n_paired) == (
         "final_val_loss",
         "attention=differential",
         "attention=standard",
@@ -272,12 +274,13 @@ def test_verdict_on_primary_metric_from_grid_record(built):
     # Render check: the report opens with the verdict sentence, then the paired-difference chart.
     body = md.split("\n\n")
     assert body[2].startswith("- differential lowers final_val_loss by") and "3 paired seeds" in body[2]
-    assert body[3] == "![paired differences in final_val_loss](plots/paired_difference.png)"
+    assert body[3].startswith("- over training (final_val_loss at each of 8 evaluation points):\n  - ")
+    assert body[4].splitlines()[0] == "![paired differences in final_val_loss](plots/paired_difference.png)"
 
 
 def test_cells_count_completed_launched_and_diverged(built):
     _, _, _, rep = built
-    cells = {c.name: (c.completed, c.launched, c.diverged) for c in rep.cells}
+    cells = {str(c.name): (c.completed, c.launched, c.diverged) for c in rep.cells}
     assert cells == {"attention=standard": (3, 4, 1), "attention=differential": (3, 4, 0)}
     assert _obj(rep, "attention=differential", "final_val_loss").reduced == "paired on 3 of 4 launched seeds"
 
@@ -294,7 +297,7 @@ def test_failed_diverged_and_elsewhere_runs_listed_not_averaged(built):
 
 def test_fairness_flags_flops_ratio_at_matched_tokens(built):
     _, _, _, rep = built
-    row = next(f for f in rep.fairness if f.cell == "attention=differential")
+    row = next(f for f in rep.fairness if str(f.cell) == "attention=differential")
     # 5.0e6 / 4.8e6 = 1.0417 (test input) is beyond the 0.02 tolerance with tokens matched.
     assert row.ratios["flops_per_token"] == pytest.approx(5.0 / 4.8, rel=1e-12) and "beyond" in row.flag
     assert row.ratios["params"] == 1.0
@@ -325,8 +328,9 @@ def test_console_opens_with_the_verdict_then_the_table(grid, capsys):
     assert report.main([str(grid)]) == 0
     out = capsys.readouterr().out.splitlines()
     assert out[0].startswith(f"{grid.name}: differential lowers final_val_loss by")
-    assert out[1].split()[:5] == ["cell", "completed", "final_val_loss", "95%", "CI"]
-    assert "paired" in out[1]
+    assert out[1].startswith("over training (final_val_loss at each of 8 evaluation points):")
+    assert out[3].split()[:5] == ["cell", "completed", "final_val_loss", "95%", "CI"]
+    assert "paired" in out[3]
 
 
 def test_several_grids_open_with_one_verdict_line_each(grid, tmp_path, capsys):
@@ -356,7 +360,7 @@ def test_no_grid_json_needs_baseline(tmp_path, capsys):
     assert len(err) == 1 and "--baseline" in err[0]
     assert report.main([str(tmp_path), "--baseline", "attention=differential"]) == 0
     rep = table.build(load.load_grid(tmp_path, "attention=differential"))
-    assert rep.baseline == "attention=differential" and rep.verdicts[0].status == "one pair"
+    assert str(rep.baseline) == "attention=differential" and rep.verdicts[0].status == "one pair"
 
 
 def test_fewer_than_three_pairs_give_no_seeds_number(tmp_path):
@@ -457,6 +461,7 @@ def sweep_grid(tmp_path_factory):
     _grid_json(
         root,
         baseline="attention=standard,model=m1",
+        varied=["attention", "model"],
         unequal_axes=["model"],
         sweep={"axis": "params", "key": "model"},
     )

@@ -34,10 +34,18 @@ import csv
 import sys
 from pathlib import Path
 
-from . import plots, render, table
+from . import attribution, plots, render, table
 from .load import ReportError, load_grid
 
-OWN_PLOTS = ("paired_difference.png", "val_loss.png", "lambda.png", "retrieval_heatmap.png", "efficiency.png")
+OWN_PLOTS = (
+    "paired_difference.png",
+    "val_loss.png",
+    "lambda.png",
+    "retrieval_heatmap.png",
+    "efficiency.png",
+    "interaction.png",
+    "over_training.png",
+)
 
 
 def write_plots(report: table.Report, plot_dir: Path) -> list[tuple[str, str]]:
@@ -47,6 +55,12 @@ def write_plots(report: table.Report, plot_dir: Path) -> list[tuple[str, str]]:
     written = []
     if plots.paired_difference_chart(report, plot_dir / OWN_PLOTS[0]):
         written.append((f"paired differences in {report.metric}", OWN_PLOTS[0]))
+    if plots.interaction_plot(report, table.values_by_cell(report.runs), plot_dir / OWN_PLOTS[5]):
+        written.append((f"{report.metric} by factor levels", OWN_PLOTS[5]))
+    names = {t.contrast: attribution.contrast_name(report, t.contrast) for t in report.over_training}
+    what = "effects" if report.factors else "paired differences"
+    if plots.over_training_plot(report, names, plot_dir / OWN_PLOTS[6]):
+        written.append((f"{what} in {report.metric} over training", OWN_PLOTS[6]))
     cells = sorted(report.refs)
     labels, _ = plots.short_labels(cells)
     if plots.plot_val_loss(report.runs, plot_dir / OWN_PLOTS[1], labels):
@@ -117,8 +131,8 @@ def main(argv: list[str] | None = None) -> int:
     except ReportError as exc:
         print(f"h2h-report: {exc}", file=sys.stderr)
         return 2
-    if len(reports) > 1:
-        print("\n".join(f"{r.name}: {line}" for r in reports for line in render.headline(r)) + "\n")
-    print("\n\n".join(render.console(r) for r in reports))
+    if len(reports) > 1:  # every grid's first lines together, then each grid's details once
+        print("\n".join(line for r in reports for line in render.named(r, render.headline(r))) + "\n")
+    print("\n\n".join(render.console(r, with_headline=len(reports) == 1) for r in reports))
     print("wrote " + ", ".join(f"{r.folder}/report.md" for r in reports))
     return 0

@@ -4,7 +4,6 @@ own EventAccumulator), the grid record (``records.read_grid``) and run folders l
 from __future__ import annotations
 
 import math
-import re
 from collections import defaultdict
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -12,8 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from ablate import records
-
-SEED_PART = re.compile(r",?seed=\d+$")
+from ablate.cells import Cell
 
 
 class ReportError(Exception):
@@ -26,10 +24,7 @@ class Run:
     name: str  # folder relative to the grid folder
     summary: records.RunSummary
     scalars: dict = field(default_factory=dict)  # tag -> (steps, values)
-
-    @property
-    def cell(self) -> str:
-        return str(self.summary.cell or self.summary.attention or "?")
+    cell: Cell = field(default_factory=Cell)  # set by load_grid: the run's values of the swept keys
 
     @property
     def usable(self) -> bool:
@@ -43,8 +38,9 @@ class LoadedGrid:
     runs: list[Run]
     unfinished: list[Path]
     record: records.GridRecord | None
-    baseline: str
+    baseline: Cell
     metric: str
+    metric_given: bool = False  # --metric replaced what the recipe declared
 
 
 def is_number(value) -> bool:
@@ -66,9 +62,22 @@ def unfinished_folders(grid: Path) -> list[Path]:
     return sorted(p.parent for p in grid.rglob(records.CONFIG) if not (p.parent / records.SUMMARY).exists())
 
 
-def folder_cell(folder: Path) -> str:
-    """The cell a run folder belongs to, from its name (the overrides without ``seed=N``)."""
-    return SEED_PART.sub("", folder.name)
+def cell_of(summary: records.RunSummary, keys: list[str] | None) -> Cell:
+    """A run's cell: its ``summary.cell`` (the attention choice for a summary without one), kept to
+    the grid's swept keys when the grid record names them."""
+    if summary.cell is None:
+        return Cell.of({"attention": summary.attention or "?"})
+    cell = Cell.parse(summary.cell)
+    return cell.only(keys) if keys else cell
+
+
+def folder_cell(folder: Path, keys: list[str] | None = None) -> Cell:
+    """The cell a run folder belongs to, from its name (the overrides, seed left out)."""
+    try:
+        cell = Cell.parse(folder.name)
+    except ValueError:
+        return Cell.of({"folder": folder.name})
+    return cell.only(keys) if keys else cell
 
 
 def event_files(folder: Path) -> list[Path]:
@@ -122,14 +131,24 @@ def load_grid(grid: Path, baseline: str | None = None, metric: str | None = None
     if not runs:
         raise ReportError(f"no {records.SUMMARY} below {grid}")
     record = read_record(grid)
+    keys = list(record.varied) if record and record.varied else None
+    for run in runs:
+        run.cell = cell_of(run.summary, keys)
     cells = sorted({r.cell for r in runs})
+    names = ", ".join(map(str, cells))
     chosen = baseline or (record.baseline if record else None)
     if chosen is None:
-        raise ReportError(f"{grid} has no {records.GRID}: pass --baseline CELL (one of: {', '.join(cells)})")
-    if chosen not in cells:
+        raise ReportError(f"{grid} has no {records.GRID}: pass --baseline CELL (one of: {names})")
+    try:
+        wanted = Cell.parse(chosen)
+    except ValueError as exc:
+        raise ReportError(f"--baseline {chosen!r}: {exc}") from None
+    matches = [c for c in cells if c == wanted] or [c for c in cells if c.contains(wanted)]
+    if len(matches) != 1:
         where = "--baseline" if baseline else f"{records.GRID} baseline"
-        raise ReportError(f"{where} names {chosen!r}, but no run has that cell; cells: {', '.join(cells)}")
+        raise ReportError(f"{where} names {chosen!r}, which matches {len(matches)} cells; cells: {names}")
     for run in runs:
         run.scalars = read_scalars(run.folder)
     primary = metric or (record.primary_metric if record else "final_val_loss")
-    return LoadedGrid(grid, runs, unfinished_folders(grid), record, chosen, primary)
+    unfinished = unfinished_folders(grid)
+    return LoadedGrid(grid, runs, unfinished, record, matches[0], primary, metric_given=metric is not None)

@@ -12,8 +12,9 @@ from pathlib import Path
 import numpy as np
 
 from ablate import efficiency
+from ablate.cells import Cell
 
-from .table import Report, design_label
+from .table import Report
 
 LAMBDA_TAG = re.compile(r"^lambda/layer_(\d+)$")
 RETRIEVAL_KEY = re.compile(
@@ -41,7 +42,7 @@ def paired_difference_chart(report: Report, path: Path) -> bool:
     highs = [v.high - v.diff if math.isfinite(v.high) else 0.0 for v in shown]
     ax.bar(x, [v.diff for v in shown], 0.6, yerr=[lows, highs], capsize=4, color="tab:blue")
     ax.axhline(0.0, color="black", lw=0.8)
-    ax.set_xticks(x, [f"{design_label(v.cell, v.reference)}\n(n={v.n_paired})" for v in shown], fontsize=8)
+    ax.set_xticks(x, [f"{v.cell.label(v.reference)}\n(n={v.n_paired})" for v in shown], fontsize=8)
     ax.set_ylabel(f"paired difference in {report.metric}")
     ax.set_title(f"{report.metric}: cell minus reference\nwhiskers = 95% t interval", fontsize=9)
     fig.tight_layout()
@@ -183,13 +184,15 @@ def plot_retrieval(grids, path: Path, labels: dict[str, str]) -> None:
     plt.close(fig)
 
 
-def short_labels(cells: list[str]) -> tuple[dict[str, str], list[str]]:
+def short_labels(cells: list[Cell]) -> tuple[dict[Cell, str], list[str]]:
     """Plot labels without the ``key=value`` parts every cell shares; also returns those parts."""
-    parts = {c: c.split(",") for c in cells}
-    shared = [p for p in parts[cells[0]] if all(p in parts[c] for c in cells)] if len(cells) > 1 else []
-    labels = {c: ",".join(p for p in parts[c] if p not in shared) or c for c in cells}
+    shared = (
+        [f"{k}={v}" for k, v in cells[0].items if all(c.get(k) == v for c in cells)] if len(cells) > 1 else []
+    )
+    keep = {k for c in cells for k, v in c.items if f"{k}={v}" not in shared}
+    labels = {c: str(c.only(keep)) if len(c.only(keep)) else str(c) for c in cells}
     if len(set(labels.values())) < len(cells):
-        return {c: c for c in cells}, []
+        return {c: str(c) for c in cells}, []
     return labels, shared
 
 
@@ -238,3 +241,74 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
+
+
+def interaction_plot(report: Report, table: dict, path: Path) -> bool:
+    """The primary metric against the first factor's levels, one line per level of the second
+    (other factors averaged): per-seed points faint, mean and 95% t interval bold."""
+    crossed = [f for f in report.factors if not len(f.within)]
+    if len(crossed) < 2:
+        return False
+    from ablate.stats import mean_ci
+
+    a, b = crossed[0], crossed[1]
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(6, 4))
+    x = np.arange(len(a.levels))
+    for j, level_b in enumerate(b.levels):
+        per_seed = []
+        for level_a in a.levels:
+            cells = [c for c in table if c.get(a.key) == level_a and c.get(b.key) == level_b]
+            seeds = (
+                set.intersection(*(set(table[c].get(report.metric, {})) for c in cells)) if cells else set()
+            )
+            per_seed.append({s: np.mean([table[c][report.metric][s] for c in cells]) for s in seeds})
+        offset = (j - (len(b.levels) - 1) / 2) * 0.06
+        (line,) = ax.plot([], [], marker="o", lw=2.2, label=f"{b.label}={level_b}")
+        for i, values in enumerate(per_seed):
+            ax.scatter(
+                [x[i] + offset] * len(values), list(values.values()), color=line.get_color(), alpha=0.3, s=14
+            )
+        stats = [mean_ci(list(v.values())) if len(v) else (math.nan,) * 3 for v in per_seed]
+        means = [m for m, _, _ in stats]
+        errs = [
+            [m - lo if math.isfinite(lo) else 0 for m, lo, _ in stats],
+            [hi - m if math.isfinite(hi) else 0 for m, _, hi in stats],
+        ]
+        ax.errorbar(x + offset, means, yerr=errs, color=line.get_color(), lw=2.2, capsize=5, marker="o")
+    ax.set_xticks(x, [f"{a.label}={v}" for v in a.levels])
+    ax.set_ylabel(report.metric)
+    ax.set_title(
+        f"{report.metric} by {a.label} and {b.label}\nfaint: seeds; bold: mean, 95% t interval", fontsize=9
+    )
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True
+
+
+def over_training_plot(report: Report, names: dict, path: Path) -> bool:
+    """Every effect (or pairwise difference) on the primary metric at each evaluation point, with
+    its 95% t interval as a band; zero dashed."""
+    shown = [t for t in report.over_training if t.points and t.contrast.kind != "simple"]
+    if not shown:
+        return False
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(7.5, 4.2))
+    for t in shown:
+        tokens = np.array([p[0] for p in t.points])
+        est = [p[1] for p in t.points]
+        (line,) = ax.plot(tokens, [e.mean for e in est], marker="o", markersize=3, label=names[t.contrast])
+        low = [e.low if math.isfinite(e.low) else e.mean for e in est]
+        high = [e.high if math.isfinite(e.high) else e.mean for e in est]
+        ax.fill_between(tokens, low, high, color=line.get_color(), alpha=0.2)
+    ax.axhline(0.0, color="black", lw=0.8, ls="--")
+    ax.set_xlabel("tokens seen")
+    ax.set_ylabel(f"effect on {report.metric}")
+    ax.set_title(f"{report.metric}: effects over training (band: 95% t interval across seeds)", fontsize=9)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True

@@ -5,7 +5,8 @@ from __future__ import annotations
 import math
 import re
 
-from .table import LOSS, Report, Verdict, design_label
+from . import attribution
+from .table import LOSS, Report, Verdict
 
 CSV_COLUMNS = [
     "cell",
@@ -59,7 +60,7 @@ def resolution_clause(v: Verdict) -> str:
 
 
 def verdict_sentence(v: Verdict) -> str:
-    who, ref, u = design_label(v.cell, v.reference), design_label(v.reference, v.cell), unit(v.metric)
+    who, ref, u = v.cell.label(v.reference), v.reference.label(v.cell), unit(v.metric)
     verb = "lowers" if v.diff < 0 else "raises"
     tail = f"; {v.reduced}" if v.reduced else ""
     if v.status == "excludes zero":
@@ -93,6 +94,9 @@ def verdict_sentence(v: Verdict) -> str:
 
 
 def headline(report: Report) -> list[str]:
+    """The first lines: a factorial grid's effects on the primary metric, else its verdicts."""
+    if report.factors:
+        return attribution.effect_lines(report)
     return [verdict_sentence(v) for v in report.verdicts] or [
         f"only the baseline {report.baseline}: nothing to compare"
     ]
@@ -255,15 +259,49 @@ def appendix(report: Report) -> list[str]:
     )
 
 
+def images(plots: list[tuple[str, str]], *names: str) -> list[str]:
+    """The named figures that were drawn, as Markdown images, in the order asked."""
+    drawn = dict((name, title) for title, name in plots)
+    return [f"![{drawn[n]}](plots/{n})" for n in names if n in drawn]
+
+
+def bullets(lines: list[str], end: str = "") -> list[str]:
+    """Markdown list items; an indented line becomes an item under the one before."""
+    return [f"  - {ln.strip()}{end}" if ln.startswith("  ") else f"- {ln.strip()}{end}" for ln in lines]
+
+
+def attribution_section(report: Report, plots: list[tuple[str, str]]) -> list[str]:
+    md = ["## What each part did", ""]
+    md += [attribution.convention_line(), ""]
+    md += images(plots, "interaction.png", "over_training.png")
+    header, rows = attribution.effects_table(report)
+    md += [
+        "",
+        "### Effects on every metric",
+        "",
+        "Holm's adjustment runs over the primary metric's effects.",
+        "",
+    ]
+    return md + table(header, rows) + [""]
+
+
 def markdown(report: Report, plots: list[tuple[str, str]]) -> str:
+    title = "What each part of the design did" if report.factors else "Verdict"
     md = [
         f"# headtohead report: {report.name}",
         "",
-        f"**Verdict on `{report.metric}`** (baseline `{report.baseline}`):",
+        f"**{title}, on `{report.metric}`** (baseline `{report.baseline}`):",
         "",
     ]
-    md += [f"- {line}." for line in headline(report)] + [""]
-    md += [f"![{title}](plots/{name})" for title, name in plots[:1]] + ["", "## Probe families", ""]
+    md += bullets(headline(report), end=".")
+    md += [""] + bullets(attribution.training_lines(report)) + [""]
+    if report.factors:
+        md += attribution_section(report, plots)
+        md += ["## Pairwise against the baseline", ""]
+        md += [f"- {verdict_sentence(v)}." for v in report.verdicts] + [""]
+    if not report.factors:
+        md += images(plots, "paired_difference.png", "over_training.png")
+    md += ["", "## Probe families", ""]
     md += family_tables(report)
     md += ["## Cells and seeds", "", f"- {rounds_line(report)}; recipe {report.recipe or 'not stated'}."]
     md += [
@@ -351,15 +389,56 @@ def csv_rows(report: Report) -> list[list[str]]:
             + [""] * 9
             + [c.sentence()]
         )
+    return rows + effect_csv_rows(report)
+
+
+def effect_csv_rows(report: Report) -> list[list[str]]:
+    """Factorial effects: ``cell`` holds the effect's name, ``kind`` is ``effect`` (main effects
+    and interactions) or ``simple effect``; ``mean`` and its interval are the effect's; ``p_holm``
+    is set for the primary metric's family."""
+    rows = []
+    for e in report.effects:
+        kind = "simple effect" if e.contrast.kind == "simple" else "effect"
+        name = attribution.term_name(report, e.contrast)
+        if e.contrast.at:
+            name += " at " + ",".join(f"{k}={v}" for k, v in e.contrast.at)
+        note = f"missing cells: {', '.join(map(str, e.missing))}" if e.missing else e.status
+        values = (
+            name,
+            e.metric,
+            kind,
+            e.n,
+            e.mean,
+            e.low,
+            e.high,
+            None,
+            None,
+            None,
+            None,
+            None,
+            e.p,
+            e.p_holm,
+        )
+        rows.append([csv_value(x) for x in values] + ["", "", "", note])
     return rows
 
 
-def console(report: Report) -> str:
-    lines = [f"{report.name}: {line}" for line in headline(report)]
+def named(report: Report, lines: list[str]) -> list[str]:
+    """Lines under the grid's name: ``name: first line``, indented lines kept as they are."""
+    return [line if line.startswith("  ") else f"{report.name}: {line}" for line in lines]
+
+
+def console(report: Report, with_headline: bool = True) -> str:
+    lines = named(report, headline(report)) if with_headline else []
+    if report.factors:
+        lines += attribution.training_lines(report) + [attribution.convention_line(), ""]
+        lines += [f"pairwise: {verdict_sentence(v)}" for v in report.verdicts]
+    else:
+        lines += attribution.training_lines(report)
     header = ["cell", "completed", report.metric, "95% CI", "paired n", "diff", "95% CI of diff"]
     body = [
         [
-            r.cell + (" *" if r.cell == report.baseline else ""),
+            str(r.cell) + (" *" if r.cell == report.baseline else ""),
             next(f"{c.completed}/{c.launched}" for c in report.cells if c.name == r.cell),
             num(r.mean),
             interval(r.ci_low, r.ci_high),

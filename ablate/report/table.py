@@ -18,8 +18,11 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ablate import efficiency
+from ablate.cells import Cell
+from ablate.factors import Factor
 from ablate.stats import holm, mean_ci, paired_difference, seeds_needed_range
 
+from . import effects as fx
 from .load import LoadedGrid, ReportError, Run, folder_cell, is_number
 
 LOSS = "final_val_loss"
@@ -28,7 +31,6 @@ CONTEXT_PATTERNS = [
     re.compile(p) for p in (r"(^|/)n_[^/]*$", r"^probe_seconds(/|$)", r"/copy_level$", r"_reached$")
 ]
 TOKENS_TO = re.compile(r"^(?P<family>.+)/tokens_to_(?P<level>[^/]+)$")
-CELL_PART = re.compile(r"([^\s,=]+)=([^\s,]+)")
 LOSS_RESOLUTION, SHARE_RESOLUTION = 0.01, 0.02
 SHARE_WORDS = re.compile(r"(acc|share|auc|area)")
 
@@ -50,9 +52,27 @@ def resolution_for(metric: str, primary: str, primary_resolution: float, values)
     return None
 
 
+# Which way is better, by the metric's name (first match wins); a recipe can say otherwise with
+# grid.better ({metric: lower | higher}). Shares and other descriptive numbers have no better way.
+BETTER = (
+    (re.compile(r"loss|perplexity"), "lower"),
+    (re.compile(r"(^|/)tokens_to_"), "lower"),
+    (re.compile(r"(^|/)(acc|auc|accuracy)([_/]|$)|/acc_"), "higher"),
+)
+
+
+def better_direction(metric: str, declared: dict | None = None) -> str | None:
+    """``lower``, ``higher`` or None (no better way: a share, a count, a norm)."""
+    if declared and metric in declared:
+        return declared[metric]
+    return next((way for pattern, way in BETTER if pattern.search(metric)), None)
+
+
 @dataclass
-class Cell:
-    name: str
+class CellRuns:
+    """How many runs of a cell were launched, completed and diverged, and the completed seeds."""
+
+    name: Cell
     launched: int
     completed: int
     diverged: int
@@ -61,9 +81,9 @@ class Cell:
 
 @dataclass
 class MetricRow:
-    cell: str
+    cell: Cell
     metric: str
-    reference: str
+    reference: Cell
     n: int = 0
     mean: float = math.nan
     ci_low: float = math.nan
@@ -89,8 +109,8 @@ class MetricRow:
 
 @dataclass
 class Verdict:
-    cell: str
-    reference: str
+    cell: Cell
+    reference: Cell
     metric: str
     n_paired: int
     diff: float
@@ -104,15 +124,15 @@ class Verdict:
 
 @dataclass
 class Context:
-    cell: str
+    cell: Cell
     key: str
     values: list
 
 
 @dataclass
 class FairnessRow:
-    cell: str
-    reference: str
+    cell: Cell
+    reference: Cell
     values: dict
     ratios: dict
     budget_match: str | None
@@ -129,8 +149,8 @@ class LeftOut:
 
 @dataclass
 class TestCount:
-    cell: str
-    reference: str
+    cell: Cell
+    reference: Cell
     tested: int
     below: int
     below_holm: int
@@ -141,7 +161,7 @@ class Report:
     name: str
     folder: str
     recipe: str | None
-    baseline: str
+    baseline: Cell
     metric: str
     resolution: float | None
     refs: dict
@@ -159,34 +179,22 @@ class Report:
     sweep: dict | None = None
     fits: dict = field(default_factory=dict)
     sweep_designs: dict = field(default_factory=dict)
+    factors: list = field(default_factory=list)  # [Factor]: a factorial grid
+    effects: list = field(default_factory=list)  # [effects.Estimate], every metric
+    missing: list = field(default_factory=list)  # [Cell] of the factorial without a completed run
+    over_training: list = field(default_factory=list)  # [effects.Trajectory] on the primary metric
     runs: list = field(default_factory=list, repr=False)
 
 
-def cell_parts(cell: str) -> dict[str, str]:
-    return dict(CELL_PART.findall(cell))
-
-
-def design_label(cell: str, reference: str) -> str:
-    """What sets a cell apart from its reference: the differing values (``differential``)."""
-    ref = cell_parts(reference)
-    diff = {k: v for k, v in cell_parts(cell).items() if ref.get(k) != v}
-    if len(diff) == 1:
-        return next(iter(diff.values()))
-    return ",".join(f"{k}={v}" for k, v in diff.items()) or cell
-
-
-def reference_cells(cells: list[str], baseline: str, sweep_key: str | None) -> dict[str, str]:
+def reference_cells(cells: list[Cell], baseline: Cell, sweep_key: str | None) -> dict[Cell, Cell]:
     """Each cell's reference: the baseline, or the baseline's design at the cell's sweep point."""
     refs = {cell: baseline for cell in cells}
-    base_parts = cell_parts(baseline)
-    if not sweep_key or sweep_key not in base_parts:
+    if not sweep_key or baseline.get(sweep_key) is None:
         return refs
-    by_parts = {tuple(sorted(cell_parts(c).items())): c for c in cells}
     for cell in cells:
-        parts = cell_parts(cell)
-        if sweep_key in parts:
-            wanted = dict(base_parts, **{sweep_key: parts[sweep_key]})
-            refs[cell] = by_parts.get(tuple(sorted(wanted.items())), baseline)
+        if cell.get(sweep_key) is not None:
+            wanted = baseline.with_values({sweep_key: cell.get(sweep_key)})
+            refs[cell] = wanted if wanted in refs else baseline
     return refs
 
 
@@ -196,9 +204,9 @@ def run_numbers(run: Run) -> dict[str, float]:
     return {str(k): float(v) for k, v in values.items() if is_number(v) and math.isfinite(float(v))}
 
 
-def values_by_cell(runs: list[Run]) -> dict[str, dict[str, dict]]:
+def values_by_cell(runs: list[Run]) -> dict[Cell, dict[str, dict]]:
     """cell -> key -> {seed: value}, completed runs only; duplicate seeds are an error."""
-    table: dict[str, dict[str, dict]] = defaultdict(lambda: defaultdict(dict))
+    table: dict[Cell, dict[str, dict]] = defaultdict(lambda: defaultdict(dict))
     owner: dict[tuple, str] = {}
     for run in runs:
         if not run.usable:
@@ -206,7 +214,7 @@ def values_by_cell(runs: list[Run]) -> dict[str, dict[str, dict]]:
         key = (run.cell, run.summary.seed)
         if key in owner:
             raise ReportError(
-                f"cell {run.cell!r} has seed {run.summary.seed} twice: {owner[key]} and {run.name}"
+                f"cell {str(run.cell)!r} has seed {run.summary.seed} twice: {owner[key]} and {run.name}"
             )
         owner[key] = run.name
         for name, value in run_numbers(run).items():
@@ -214,15 +222,15 @@ def values_by_cell(runs: list[Run]) -> dict[str, dict[str, dict]]:
     return table
 
 
-def cells_of(loaded: LoadedGrid) -> list[Cell]:
-    by_cell: dict[str, list[Run]] = defaultdict(list)
+def cells_of(loaded: LoadedGrid) -> list[CellRuns]:
+    by_cell: dict[Cell, list[Run]] = defaultdict(list)
     for run in loaded.runs:
         by_cell[run.cell].append(run)
     unfinished = defaultdict(int)
     for folder in loaded.unfinished:
-        unfinished[folder_cell(folder)] += 1
+        unfinished[folder_cell(folder, loaded.record.varied if loaded.record else None)] += 1
     return [
-        Cell(
+        CellRuns(
             name,
             len(rs) + unfinished.get(name, 0),
             sum(r.usable for r in rs),
@@ -233,7 +241,7 @@ def cells_of(loaded: LoadedGrid) -> list[Cell]:
     ]
 
 
-def censoring(table, cell: str, metric: str) -> str:
+def censoring(table, cell: Cell, metric: str) -> str:
     """'not reached in k of n seeds' for a tokens-to metric some seed did not reach, else ''."""
     match = TOKENS_TO.match(metric)
     if not match:
@@ -269,7 +277,7 @@ def fill_seeds_needed(row: MetricRow) -> None:
         row.seeds_needed = seeds_needed_range(row.diff_std, row.n_paired, row.resolution)
 
 
-def metric_row(table, cell: str, metric: str, ref: str, primary: tuple[str, float]) -> MetricRow:
+def metric_row(table, cell: Cell, metric: str, ref: Cell, primary: tuple[str, float]) -> MetricRow:
     seeds = table.get(cell, {}).get(metric, {})
     row = MetricRow(cell, metric, ref, n=len(seeds))
     row.censored = censoring(table, cell, metric) or (
@@ -289,7 +297,7 @@ def natural(text: str) -> tuple:
     return tuple((0, int(t), "") if t.isdigit() else (1, 0, t) for t in re.split(r"(\d+)", text) if t)
 
 
-def metric_rows(table, refs: dict[str, str], primary: tuple[str, float]) -> list[MetricRow]:
+def metric_rows(table, refs: dict[Cell, Cell], primary: tuple[str, float]) -> list[MetricRow]:
     keys = {m for per in table.values() for m in per if not is_context(m)}
     metrics = sorted(keys, key=lambda m: (m != primary[0], m != LOSS, natural(m)))
     return [
@@ -321,7 +329,7 @@ def adjust_and_count(rows: list[MetricRow]) -> list[TestCount]:
     return counts
 
 
-def mark_reduced(rows: list[MetricRow], cells: list[Cell]) -> None:
+def mark_reduced(rows: list[MetricRow], cells: list[CellRuns]) -> None:
     """Flag comparisons paired on fewer seeds than were launched for either cell."""
     launched = {c.name: c.launched for c in cells}
     for row in rows:
@@ -371,8 +379,8 @@ def context_values(table) -> list[Context]:
 FAIRNESS_KEYS = ("params", "non_embedding_params", "flops_per_token", "tokens", "train_flops")
 
 
-def fairness_rows(runs: list[Run], refs: dict[str, str], tolerance: float) -> list[FairnessRow]:
-    by_cell: dict[str, list[Run]] = defaultdict(list)
+def fairness_rows(runs: list[Run], refs: dict[Cell, Cell], tolerance: float) -> list[FairnessRow]:
+    by_cell: dict[Cell, list[Run]] = defaultdict(list)
     for run in runs:
         by_cell[run.cell].append(run)
     values, match = {}, {}
@@ -455,12 +463,14 @@ def sweep_cells(runs: list[Run], sweep_key: str, field_name: str) -> dict[str, d
     for run in runs:
         x = getattr(run.summary, field_name)
         if run.usable and is_number(x):
-            design = ",".join(f"{k}={v}" for k, v in cell_parts(run.cell).items() if k != sweep_key)
-            out[design or run.cell][float(x)][run.summary.seed] = run.summary.final_val_loss
+            design = run.cell.without(sweep_key)
+            out[str(design if len(design) else run.cell)][float(x)][run.summary.seed] = (
+                run.summary.final_val_loss
+            )
     return out
 
 
-def efficiency_results(runs, sweep: dict, baseline: str, resamples: int, seed: int):
+def efficiency_results(runs, sweep: dict, baseline: Cell, resamples: int, seed: int):
     """(comparisons, fits, cells by design, notes) for a sweep grid."""
     if not isinstance(sweep, dict) or sweep.get("axis") not in efficiency.AXIS_NOUNS:
         raise ReportError(
@@ -468,7 +478,7 @@ def efficiency_results(runs, sweep: dict, baseline: str, resamples: int, seed: i
         )
     key = sweep.get("key")
     designs = sweep_cells(runs, key, "non_embedding_params" if sweep["axis"] == "params" else "tokens")
-    base = ",".join(f"{k}={v}" for k, v in cell_parts(baseline).items() if k != key) or baseline
+    base = str(baseline.without(key) if len(baseline.without(key)) else baseline)
     comparisons, fits, notes = [], {}, []
     if base not in designs:
         return (
@@ -525,8 +535,23 @@ def build(
         sweep=sweep,
         runs=loaded.runs,
     )
+    attribute(report, table, record)
     if sweep:
         report.efficiency, report.fits, report.sweep_designs, report.efficiency_notes = efficiency_results(
             loaded.runs, sweep, loaded.baseline, resamples, seed
         )
     return report
+
+
+def attribute(report: Report, table: dict, record) -> None:
+    """A factorial grid's effects on every metric, the cells it misses, and the primary metric's
+    effects over training; a pairwise grid's differences over training."""
+    report.factors = [Factor.from_dict(f) for f in (record.factors if record else [])]
+    if report.factors:
+        metrics = list(dict.fromkeys(r.metric for r in report.rows))
+        report.effects = fx.effect_estimates(table, report.factors, metrics, report.metric)
+        report.missing = fx.missing_cells(table, report.factors)
+        contrasts = [e.contrast for e in report.effects if e.metric == report.metric]
+    else:
+        contrasts = fx.pair_contrasts(report.refs)
+    report.over_training = fx.trajectories(report.runs, report.metric, contrasts)

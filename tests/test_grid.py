@@ -180,3 +180,42 @@ def test_factorial_grid_effects_equal_a_hand_computation_from_the_summaries(tmp_
             pytest.approx(high, abs=1e-12),
         )
         assert any(line.strip().startswith(name) for line in first)
+
+
+def test_nested_factors_launch_as_branches_and_make_no_impossible_cells():
+    # lambda's mode and first value exist only for differential attention: Hydra's sweeper would
+    # cross them with standard too, so the grid launches once per branch.
+    grid = preflight(["-m", "recipe=lambda"])
+    assert grid.branches == [
+        ["attention=standard"],
+        [
+            "attention=differential",
+            "attention.lambda_mode=learned,fixed",
+            "attention.lambda_init=depth,0.8,0.5",
+        ],
+    ]
+    assert grid.jobs == 3 * (1 + 2 * 3) and grid.baseline == "attention=standard"
+    cells = {row["cell"] for row in grid.fairness}
+    assert "attention=standard" in cells and not any("standard" in c and "lambda" in c for c in cells)
+    assert [f["within"] for f in grid.factors] == [None, "attention=differential", "attention=differential"]
+
+
+def test_a_factorial_recipe_needs_no_baseline_and_an_extra_swept_key_becomes_a_factor():
+    grid = preflight(["-m", "recipe=head_norm"])
+    assert grid.baseline == "attention=standard,attention.head_norm=False" and grid.jobs == 16
+    grid = preflight(["-m", "recipe=head_norm", "optim.lr=0.002,0.004", "budget.tokens=1e5"])
+    assert [f["key"] for f in grid.factors] == ["attention", "attention.head_norm", "optim.lr"]
+    assert grid.factors[2]["reference"] == "0.002" and "budget.tokens" not in grid.varied
+
+
+def test_factor_levels_go_to_the_hparams_table():
+    from ablate.runner import factor_levels
+
+    resolved = {
+        "grid": {"factors": {"attention": "standard", "attention.lambda_mode": {"reference": "learned"}}},
+        "attention": {"head_dim": 16},
+    }
+    assert factor_levels({"attention": "standard"}, resolved) == {
+        "factor/attention": "standard",
+        "factor/attention.lambda_mode": "-",
+    }

@@ -82,9 +82,12 @@ def judgement(e: Estimate, better: str | None) -> str:
 
 
 def _simple(report: Report, interaction: Estimate) -> list[Estimate]:
-    (a_key, a_level), (b_key, _) = interaction.contrast.terms
-    return [
-        e
+    """The simple effects of the interaction's first factor at the second factor's reference
+    level and at its level in the interaction, in that order."""
+    (a_key, a_level), (b_key, b_level) = interaction.contrast.terms
+    b_ref = next(f.reference for f in report.factors if f.key == b_key)
+    found = {
+        e.contrast.at[0][1]: e
         for e in report.effects
         if e.metric == interaction.metric
         and e.contrast.kind == "simple"
@@ -92,13 +95,16 @@ def _simple(report: Report, interaction: Estimate) -> list[Estimate]:
         and e.contrast.at
         and e.contrast.at[0][0] == b_key
         and e.contrast.scope == interaction.contrast.scope
-    ][-2:]
+    }
+    return [found[v] for v in (b_ref, b_level) if v in found]
 
 
 def interaction_reading(report: Report, e: Estimate, better: str | None) -> str:
     """The two simple effects behind a two-factor interaction, and what they say together."""
+    if len(e.contrast.terms) != 2:
+        return ""
     simple = _simple(report, e)
-    if len(simple) != 2 or len(e.contrast.terms) != 2:
+    if len(simple) != 2:
         return ""
     a_label, a_ref = _levels(report, e.contrast.terms[0][0])
     a_level = e.contrast.terms[0][1]

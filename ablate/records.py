@@ -117,6 +117,7 @@ class GridRecord:
     resolution: float = 0.01
     max_seeds: int | None = None
     rounds: int = 1
+    first_stage: list = field(default_factory=list)  # seed rounds: the first round's seeds (Stein)
     varied: list = field(default_factory=list)
     factors: list = field(default_factory=list)
     branches: list = field(default_factory=lambda: [[]])  # extra overrides per launch (nested factors)

@@ -1,9 +1,20 @@
-"""Seeds until the answer is clear: after a grid's first round, add seeds in rounds until the
-primary comparison's interval is narrow enough or ``grid.max_seeds`` is reached.
+"""Seed rounds that keep their 95%: Stein's (1945) two-stage design.
 
-The stopping rule looks only at the interval's half-width (``grid.resolution``), never at the
-sign of the difference or its p-value, so stopping cannot favour a result. Each round doubles the
-seeds (capped at the maximum); a relaunch skips runs that already finished.
+``grid.max_seeds=N`` makes the grid's first round (its n0 seeds) a first stage. From the first
+stage's per-seed values of every primary comparison (``ablate.report.verdicts``: the cells against
+their references, or a factorial grid's effects) the total number of seeds is fixed once,
+
+    N = max over the comparisons of max(n0, ceil((t_{0.975, n0-1} s0 / w)^2)),   at most max_seeds,
+
+with s0 the comparison's first-stage SD and w = ``grid.resolution``; one more round adds the
+missing seeds. The report then gives each primary comparison Stein's interval (the mean of all N
+seeds, s0 and n0 - 1 degrees of freedom), whose coverage is exact for normal differences whatever
+N the first stage chose (``ablate.stats.two_stage_interval``); a rule that keeps adding seeds until
+the interval looks narrow does not keep its 95% (``ablate.calibration`` measures both).
+
+On a drill, a comparison where fewer than half of a cell's first-stage seeds formed recall asks
+for the cap: its spread says little while formation is a matter of luck. A comparison with no
+spread in the first stage has no interval at all; it is noted, never called resolved.
 """
 
 from __future__ import annotations
@@ -12,42 +23,7 @@ import math
 from pathlib import Path
 
 from . import records
-from .stats import paired_difference
-
-
-def metric_of(summary: records.RunSummary, name: str) -> float | None:
-    """The named number of a run: a summary field (``final_val_loss``) or a probe (``drill/auc``)."""
-    value = summary.probes.get(name) if name in summary.probes else getattr(summary, name, None)
-    return float(value) if isinstance(value, (int, float)) and math.isfinite(value) else None
-
-
-def values_by_cell(grid_dir: Path, metric: str) -> dict[str, dict[int, float]]:
-    """``cell -> seed -> value`` over the grid's completed runs."""
-    out: dict[str, dict[int, float]] = {}
-    for path in sorted(Path(grid_dir).glob(f"*/{records.SUMMARY}")):
-        s = records.read_summary(path.parent)
-        value = metric_of(s, metric) if s and s.status == "completed" else None
-        if value is not None and s.cell is not None and s.seed is not None:
-            out.setdefault(s.cell, {})[int(s.seed)] = value
-    return out
-
-
-def primary_halfwidth(grid: records.GridRecord) -> float | None:
-    """The widest 95% half-width of the paired differences against the baseline (None when some
-    comparison has fewer than 2 pairs)."""
-    cells = values_by_cell(Path(grid.dir), grid.primary_metric)
-    base = cells.get(grid.baseline)
-    others = [c for c in cells if c != grid.baseline]
-    if base is None or not others:
-        return None
-    widths = []
-    for cell in others:
-        seeds = sorted(set(base) & set(cells[cell]))
-        if len(seeds) < 2:
-            return None
-        _, low, high, _ = paired_difference([cells[cell][s] for s in seeds], [base[s] for s in seeds])
-        widths.append((high - low) / 2)
-    return max(widths)
+from .stats import two_stage_total
 
 
 def with_seeds(argv: list[str], seeds: list[int]) -> list[str]:
@@ -56,35 +32,73 @@ def with_seeds(argv: list[str], seeds: list[int]) -> list[str]:
     return kept + ["seed=" + ",".join(str(s) for s in seeds)]
 
 
+def first_stage_verdicts(grid: records.GridRecord) -> list:
+    """The primary comparisons of the grid folder as the report computes them (one function for
+    both): the factorial effects on the primary metric, else each cell against its reference."""
+    from .report.load import load_grid
+    from .report.table import build
+
+    report = build(load_grid(Path(grid.dir)), resamples=1)
+    return report.effect_verdicts if report.factors else report.verdicts
+
+
+def plan_total(verdicts: list, first_stage: list[int], resolution: float, cap: int) -> tuple[int, list[str]]:
+    """The total number of seeds (Stein's two-stage rule, largest over the comparisons) and one
+    line per comparison saying why."""
+    n0 = len(first_stage)
+    total, lines = n0, []
+    for v in verdicts:
+        e = v.estimate
+        name = " vs ".join(map(str, e.contrast.cells)) if e.contrast.kind == "pair" else str(e.contrast.terms)
+        values = [e.values[s] for s in first_stage if s in e.values]
+        if v.formation is not None and not v.formation.enough:
+            need, why = cap, "fewer than half of a cell's seeds formed recall: the cap"
+        elif len(values) < 2:
+            need, why = cap, f"{len(values)} first-stage value(s): the cap"
+        elif max(values) == min(values):
+            need, why = n0, "no spread in the first stage: no interval exists"
+        else:
+            need = two_stage_total(values, resolution, cap)
+            why = f"first-stage SD {_sd(values):.3g}"
+        total = max(total, min(cap, need))
+        lines.append(f"  {name}: {why}; needs {min(cap, need)} seeds")
+    return total, lines
+
+
+def _sd(values: list[float]) -> float:
+    mean = sum(values) / len(values)
+    return math.sqrt(sum((v - mean) ** 2 for v in values) / (len(values) - 1))
+
+
 def more_rounds(grid: records.GridRecord, argv: list[str], launch) -> None:
-    """Launch further seed rounds while the primary comparison is wider than ``grid.resolution``."""
+    """After the first round: fix the total number of seeds and launch the missing ones once."""
     if not grid.max_seeds:
         return
-    while True:
-        width = primary_halfwidth(grid)
-        shown = "unknown" if width is None else f"{width:.4g}"
-        if width is not None and width <= grid.resolution:
-            print(
-                f"seed rounds: {grid.primary_metric} half-width {shown} <= {grid.resolution} after "
-                f"{len(grid.seeds)} seeds; stopping",
-                flush=True,
-            )
-            return
-        if len(grid.seeds) >= grid.max_seeds:
-            print(
-                f"seed rounds: {grid.primary_metric} half-width {shown} > {grid.resolution} at the cap of "
-                f"{grid.max_seeds} seeds (grid.max_seeds); stopping",
-                flush=True,
-            )
-            return
-        extra = min(len(grid.seeds), grid.max_seeds - len(grid.seeds))
-        start = max(grid.seeds) + 1
-        grid.seeds = grid.seeds + list(range(start, start + extra))
-        grid.jobs, grid.rounds = grid.jobs // (len(grid.seeds) - extra) * len(grid.seeds), grid.rounds + 1
-        records.write_grid(grid)
-        print(
-            f"seed rounds: {grid.primary_metric} half-width {shown} > {grid.resolution}; round {grid.rounds} "
-            f"adds seeds {start}-{start + extra - 1}",
-            flush=True,
-        )
-        launch(with_seeds(argv, grid.seeds))
+    from .report.load import ReportError
+
+    grid.first_stage = list(grid.seeds)
+    records.write_grid(grid)
+    try:
+        verdicts = first_stage_verdicts(grid)
+    except ReportError as exc:
+        print(f"seed rounds: cannot plan the second round ({exc}); stopping", flush=True)
+        return
+    total, lines = plan_total(verdicts, grid.first_stage, grid.resolution, grid.max_seeds)
+    print(
+        f"seed rounds (two-stage, Stein 1945): {len(grid.first_stage)} first-stage seeds, resolution "
+        f"{grid.resolution:g} on {grid.primary_metric}, cap {grid.max_seeds}:",
+        *lines,
+        sep="\n",
+        flush=True,
+    )
+    extra = total - len(grid.seeds)
+    if extra <= 0:
+        print("seed rounds: the first stage is enough; no second round", flush=True)
+        return
+    start = max(grid.seeds) + 1
+    grid.jobs = grid.jobs // len(grid.seeds) * total
+    grid.seeds = grid.seeds + list(range(start, start + extra))
+    grid.rounds = 2
+    records.write_grid(grid)
+    print(f"seed rounds: round 2 adds seeds {start}-{start + extra - 1} ({total} in all)", flush=True)
+    launch(with_seeds(argv, grid.seeds))

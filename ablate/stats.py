@@ -153,3 +153,130 @@ def seeds_needed_range(std: float, n: int, halfwidth: float, level: float = 0.95
     at both ends of the chi-square interval of the SD (:func:`sd_interval`, n - 1 degrees of freedom)."""
     low_sd, high_sd = sd_interval(std, n, level)
     return seeds_needed(low_sd, halfwidth, level)[1], seeds_needed(high_sd, halfwidth, level)[1]
+
+
+# --- seed rounds: Stein's two-stage design ---------------------------------------------------
+
+
+def two_stage_total(first_stage, halfwidth: float, cap: int, level: float = 0.95) -> int:
+    """Total seeds of Stein's (1945) two-stage design from the first stage's values (paired
+    differences or effect contrasts, one per seed): with n0 values of sample SD s0,
+
+        N = max(n0, ceil((t_{q, n0-1} s0 / w)^2)),   at most ``cap``,
+
+    so that the final interval (:func:`two_stage_interval`) has half-width at most w unless capped.
+    Zero spread gives N = n0 (no interval exists; see :func:`two_stage_interval`)."""
+    q = _check_level(level)
+    d = _sample(first_stage)
+    n0 = d.size
+    if n0 < 2:
+        raise ValueError(f"the first stage needs at least 2 seeds, got {n0}")
+    if not (math.isfinite(halfwidth) and halfwidth > 0.0):
+        raise ValueError(f"halfwidth must be finite and > 0, got {halfwidth}")
+    s0 = float(d.std(ddof=1))
+    needed = math.ceil((float(stats.t.ppf(q, n0 - 1)) * s0 / halfwidth) ** 2)
+    return int(min(max(cap, n0), max(n0, needed)))
+
+
+def two_stage_interval(values, n0: int, level: float = 0.95) -> tuple[float, float, float, float]:
+    """Stein's (1945) interval after a two-stage design: the mean of all N values, with the first
+    stage's SD s0 and its n0 - 1 degrees of freedom,
+
+        mean_N +/- t_{q, n0-1} s0 / sqrt(N),    p = 2 P(T_{n0-1} > |mean_N| sqrt(N) / s0).
+
+    For normal values its coverage is exact whatever N the first stage chose (the mean is
+    independent of s0). ``values`` are in seed order, the first ``n0`` the first stage's. Returns
+    ``(mean, low, high, p)``; NaN bounds and p when s0 = 0 (no interval exists)."""
+    q = _check_level(level)
+    d = _sample(values)
+    if not 2 <= n0 <= d.size:
+        raise ValueError(f"n0 must be in [2, {d.size}], got {n0}")
+    mean = float(d.mean())
+    s0 = float(d[:n0].std(ddof=1))
+    if s0 <= 1e-12 * max(float(np.abs(d[:n0]).max()), 1e-300):
+        return mean, math.nan, math.nan, math.nan
+    se = s0 / math.sqrt(d.size)
+    half = float(stats.t.ppf(q, n0 - 1)) * se
+    p = float(2.0 * stats.t.sf(abs(mean) / se, n0 - 1))
+    return mean, mean - half, mean + half, p
+
+
+# --- binary and censored outcomes ------------------------------------------------------------
+
+
+def paired_binary_test(a, b) -> tuple[int, int, float]:
+    """Exact McNemar (1947) test of paired yes/no outcomes (a[i], b[i] from the same seed): the
+    seeds where they disagree, ``(only_a, only_b, p)``, p = two-sided binomial test of only_a out
+    of only_a + only_b at 1/2 (scipy.stats.binomtest); p = 1 when they never disagree."""
+    x, y = np.asarray(a, dtype=bool), np.asarray(b, dtype=bool)
+    if x.shape != y.shape:
+        raise ValueError(f"paired outcomes differ in length: {x.size} vs {y.size}")
+    only_a, only_b = int(np.sum(x & ~y)), int(np.sum(~x & y))
+    if only_a + only_b == 0:
+        return 0, 0, 1.0
+    return only_a, only_b, float(stats.binomtest(only_a, only_a + only_b, 0.5).pvalue)
+
+
+def censored_sign_test(times_a, times_b, budget: float) -> tuple[int, int, float]:
+    """Paired comparison of times to an event that some seeds never reach within a common budget
+    (None or a value > budget: censored at the budget, never imputed). Per seed: both reached ->
+    the sooner one wins; one reached -> it wins (the other is later than the budget); neither ->
+    tied beyond the budget (dropped). Returns ``(a_sooner, b_sooner, p)``, p from the exact sign
+    test (binomial at 1/2; 1 when nothing differs)."""
+    a_wins = b_wins = 0
+    for ta, tb in zip(times_a, times_b, strict=True):
+        ra = ta is not None and math.isfinite(ta) and ta <= budget
+        rb = tb is not None and math.isfinite(tb) and tb <= budget
+        if ra and (not rb or ta < tb):
+            a_wins += 1
+        elif rb and (not ra or tb < ta):
+            b_wins += 1
+    if a_wins + b_wins == 0:
+        return 0, 0, 1.0
+    return a_wins, b_wins, float(stats.binomtest(a_wins, a_wins + b_wins, 0.5).pvalue)
+
+
+def kaplan_meier(times, observed) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Kaplan & Meier (1958) product-limit estimate of S(t) = P(event later than t).
+
+    At each distinct event time t_j with d_j events among n_j still at risk (censored times count
+    as at risk up to and including their own time): S(t_j) = prod_{i <= j} (1 - d_i / n_i), with
+    Greenwood's variance sum_{i <= j} d_i / (n_i (n_i - d_i)) of log S. Returns the event times,
+    S at them and that sum."""
+    t = np.asarray(times, dtype=float)
+    e = np.asarray(observed, dtype=bool)
+    if t.shape != e.shape or t.size == 0:
+        raise ValueError("times and observed must be 1-D of one non-zero length")
+    event_times = np.unique(t[e])
+    surv, green, s, g = [], [], 1.0, 0.0
+    for tj in event_times:
+        n = int(np.sum(t >= tj))
+        d = int(np.sum((t == tj) & e))
+        s *= 1.0 - d / n
+        g += d / (n * (n - d)) if n > d else math.inf
+        surv.append(s)
+        green.append(g)
+    return event_times, np.array(surv), np.array(green)
+
+
+def km_median(times, observed, level: float = 0.95) -> tuple[float, float, float]:
+    """Median time of a Kaplan-Meier curve (the first event time with S <= 1/2) and its interval
+    from the log(-log) pointwise band of S (Greenwood variance; the interval's lower end is where
+    the band's lower curve first reaches 1/2, its upper end where the upper curve does; NaN where
+    a curve never does within the data: not defined)."""
+    q = _check_level(level)
+    z = float(stats.norm.ppf(q))
+    t, s, g = kaplan_meier(times, observed)
+
+    def first_below(curve) -> float:
+        hits = np.flatnonzero(curve <= 0.5)
+        return float(t[hits[0]]) if hits.size else math.nan
+
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_s = np.log(s)
+        spread = z * np.sqrt(g) / np.abs(log_s)
+        lower = np.where(s > 0, s ** np.exp(spread), 0.0)
+        upper = np.where(s > 0, s ** np.exp(-spread), 0.0)
+    lower = np.where(np.isfinite(lower), lower, 0.0)
+    upper = np.where(np.isfinite(upper), upper, np.where(s > 0, 1.0, 0.0))
+    return first_below(s), first_below(lower), first_below(upper)

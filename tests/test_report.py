@@ -232,9 +232,13 @@ def test_holm_column_equals_statsmodels_within_the_comparison(built):
     from statsmodels.stats.multitest import multipletests
 
     _, rows, md, rep = built
-    mine = [
+    ours = [
         r for r in rows if r["cell"] == "attention=differential" and r["kind"] == "metric" and r["p_value"]
     ]
+    # The primary metric is tested alone (a family of one here): its Holm p is its own p.
+    (primary,) = [r for r in ours if r["metric"] == "final_val_loss"]
+    assert float(primary["p_holm"]) == pytest.approx(float(primary["p_value"]), rel=1e-12)
+    mine = [r for r in ours if r["metric"] != "final_val_loss"]  # the secondary family
     raw = [float(r["p_value"]) for r in mine]
     # Reference: statsmodels.stats.multitest.multipletests(method="holm") (Holm, 1979).
     expected = multipletests(raw, method="holm")[1]
@@ -263,17 +267,20 @@ def test_verdict_on_primary_metric_from_grid_record(built):
     (v,) = rep.verdicts
     d = np.array(LOSSES["differential"]) - np.array(LOSSES["standard"])
     low, high = sps.t.interval(0.95, 2, loc=d.mean(), scale=sps.sem(d))  # reference: scipy
-    assert (v.metric, str(v.cell), str(v.reference), v.n_paired) == (
+    cell, ref = v.contrast.cells
+    assert (v.estimate.metric, str(cell), str(ref), v.estimate.n) == (
         "final_val_loss",
         "attention=differential",
         "attention=standard",
         3,
     )
-    assert (v.low, v.high) == (pytest.approx(low, rel=1e-12), pytest.approx(high, rel=1e-12))
-    assert v.status == ("excludes zero" if high < 0 or low > 0 else "undecided")
+    e = v.estimate
+    assert (e.low, e.high) == (pytest.approx(low, rel=1e-12), pytest.approx(high, rel=1e-12))
+    assert v.status == ("clear" if high < 0 or low > 0 else "unclear")
     # Render check: the report opens with the verdict sentence, then the paired-difference chart.
     body = md.split("\n\n")
-    assert body[2].startswith("- differential lowers final_val_loss by") and "3 paired seeds" in body[2]
+    assert body[2].startswith("- final validation loss: differential is better than standard by")
+    assert "paired t, 3 seeds" in body[2] and "Direction: clear" in body[2]
     assert body[3].startswith("- over training (final_val_loss at each of 8 evaluation points):\n  - ")
     assert body[4].splitlines()[0] == "![paired differences in final_val_loss](plots/paired_difference.png)"
 
@@ -327,10 +334,11 @@ def test_event_files_read_back_from_run_folder_and_tb_subfolder(grid):
 def test_console_opens_with_the_verdict_then_the_table(grid, capsys):
     assert report.main([str(grid)]) == 0
     out = capsys.readouterr().out.splitlines()
-    assert out[0].startswith(f"{grid.name}: differential lowers final_val_loss by")
-    assert out[1].startswith("over training (final_val_loss at each of 8 evaluation points):")
-    assert out[3].split()[:5] == ["cell", "completed", "final_val_loss", "95%", "CI"]
-    assert "paired" in out[3]
+    assert out[0].startswith(f"{grid.name}: final validation loss: differential is better than standard by")
+    assert out[1].startswith("  Direction: clear")
+    assert out[2].startswith("over training (final_val_loss at each of 8 evaluation points):")
+    assert out[4].split()[:5] == ["cell", "completed", "final_val_loss", "95%", "CI"]
+    assert "paired" in out[4]
 
 
 def test_several_grids_open_with_one_verdict_line_each(grid, tmp_path, capsys):
@@ -343,9 +351,11 @@ def test_several_grids_open_with_one_verdict_line_each(grid, tmp_path, capsys):
     _grid_json(tmp_path)
     assert report.main([str(grid), str(tmp_path)]) == 0
     out = capsys.readouterr().out.splitlines()
-    assert out[0].startswith(f"{grid.name}: ") and out[1].startswith(f"{tmp_path.name}: ")
+    firsts = [line for line in out if not line.startswith("  ")]
+    assert firsts[0].startswith(f"{grid.name}: ") and firsts[1].startswith(f"{tmp_path.name}: ")
     # Equal offset 0.01 on every seed: no spread, no interval, no seeds number.
-    assert "no spread across 3 seeds" in out[1]
+    assert "in every one of 3 seeds: no spread, so no interval exists" in firsts[1]
+    assert sum(line.startswith(f"{grid.name}: ") for line in out) == 1  # each verdict printed once
     rep = table.build(load.load_grid(tmp_path))
     row = _obj(rep, "attention=differential", "final_val_loss")
     assert row.no_spread and row.seeds_needed is None and row.seeds_note == "no spread across 3 seeds"
@@ -360,7 +370,7 @@ def test_no_grid_json_needs_baseline(tmp_path, capsys):
     assert len(err) == 1 and "--baseline" in err[0]
     assert report.main([str(tmp_path), "--baseline", "attention=differential"]) == 0
     rep = table.build(load.load_grid(tmp_path, "attention=differential"))
-    assert str(rep.baseline) == "attention=differential" and rep.verdicts[0].status == "one pair"
+    assert str(rep.baseline) == "attention=differential" and rep.verdicts[0].status == "one seed"
 
 
 def test_fewer_than_three_pairs_give_no_seeds_number(tmp_path):
@@ -397,7 +407,7 @@ def test_drill_tokens_to_not_reached_is_censored(tmp_path):
             )
     _grid_json(tmp_path, primary_metric="drill/auc", resolution=0.02)
     rep = table.build(load.load_grid(tmp_path))
-    assert rep.metric == "drill/auc" and rep.verdicts[0].metric == "drill/auc"
+    assert rep.metric == "drill/auc" and rep.verdicts[0].estimate.metric == "drill/auc"
     row = _obj(rep, "attention=differential", "drill/tokens_to_half")
     assert row.censored == "not reached in 1 of 3 seeds"
     assert math.isnan(row.mean) and math.isnan(row.diff) and math.isnan(row.p_holm)

@@ -7,6 +7,7 @@ import math
 
 from ablate.factors import Contrast
 
+from . import wording
 from .effects import Estimate, Trajectory
 from .table import Report, better_direction
 
@@ -111,7 +112,7 @@ def interaction_reading(report: Report, e: Estimate, better: str | None) -> str:
     b_label = _labels(report)[e.contrast.terms[1][0]]
     parts = [f"{interval_text(s)} with {b_label}={s.contrast.at[0][1]}" for s in simple]
     words = [judgement(s, better) for s in simple]
-    text = f"{a_label} {a_level} vs {a_ref} is " + " and ".join(parts)
+    text = f"simple effects (not adjusted): {a_label} {a_level} vs {a_ref} is " + " and ".join(parts)
     if better and words.count("better") == 1 and "worse" not in words:
         at = simple[words.index("better")].contrast.at[0][1]
         text += f": {a_level} helps only with {b_label}={at}"
@@ -159,7 +160,23 @@ def effect_lines(report: Report) -> list[str]:
     lines = [head] + [f"  {effect_sentence(report, e)}" for e in effects]
     if report.missing:
         lines.append(f"  missing from the factorial: {', '.join(map(str, report.missing))}")
-    return lines
+    return lines + precision_lines(report)
+
+
+def precision_lines(report: Report) -> list[str]:
+    """The widest effect's precision against the resolution asked, and on a drill where recall
+    formed (a precision is not judged while fewer than half of a cell's seeds formed it)."""
+    shown = [v for v in report.effect_verdicts if v.precision != "no interval"]
+    out = []
+    if shown:
+        widest = max(shown, key=lambda v: v.half)
+        out.append(f"  {wording.precision_text(widest).replace('Precision:', 'Precision (widest effect):')}")
+    formation = next((v.formation for v in report.effect_verdicts if v.formation is not None), None)
+    if formation is not None:
+        names = wording.cell_names(list(formation.formed))
+        counts = "; ".join(f"{names[c]} {k} of {n}" for c, (k, n) in sorted(formation.formed.items()))
+        out.append(f"  Formed recall (reached halfway): {counts}.")
+    return out
 
 
 def convention_line() -> str:

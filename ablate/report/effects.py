@@ -20,7 +20,7 @@ import numpy as np
 from ablate import curves
 from ablate.cells import Cell
 from ablate.factors import Contrast, Factor, contrast_values, effect_contrasts, pair_contrast
-from ablate.stats import holm, mean_test
+from ablate.stats import holm, mean_test, two_stage_interval
 
 __all__ = [
     "Estimate",
@@ -66,14 +66,24 @@ class Estimate:
         return "no spread" if not math.isfinite(self.p) else "estimated"
 
 
-def estimate(values: dict[Cell, dict], contrast: Contrast, metric: str) -> Estimate:
-    """The contrast's estimate from ``cell -> seed -> value`` (cells without values are missing)."""
+def estimate(
+    values: dict[Cell, dict], contrast: Contrast, metric: str, first_stage: list | None = None
+) -> Estimate:
+    """The contrast's estimate from ``cell -> seed -> value`` (cells without values are missing):
+    the paired t interval across seeds, or, with ``first_stage`` (the first round's seeds of a
+    two-stage design, all present), Stein's interval (``ablate.stats.two_stage_interval``)."""
     missing = tuple(c for c in contrast.cells if not values.get(c))
     out = Estimate(contrast, metric, missing=missing)
     if missing:
         return out
     out.values = contrast_values(values, contrast)
-    if out.values:
+    if not out.values:
+        return out
+    first = [s for s in (first_stage or []) if s in out.values]
+    if first_stage and len(first) == len(first_stage) and len(first) >= 2:
+        ordered = first + [s for s in out.values if s not in first]
+        out.mean, out.low, out.high, out.p = two_stage_interval([out.values[s] for s in ordered], len(first))
+    else:
         out.mean, out.low, out.high, out.p = mean_test(list(out.values.values()))
     return out
 
@@ -84,16 +94,27 @@ def missing_cells(values: dict[Cell, dict], factors: list[Factor]) -> list[Cell]
     return [c for c in needed if not values.get(c)]
 
 
-def effect_estimates(table: dict, factors: list[Factor], metrics: list[str], primary: str) -> list[Estimate]:
+def effect_estimates(
+    table: dict, factors: list[Factor], metrics: list[str], primary: str, first_stage: list | None = None
+) -> list[Estimate]:
     """Every effect (and simple effect) on every metric; Holm across the primary metric's main
-    effects and interactions."""
+    effects and interactions. ``first_stage``: a two-stage design's first seeds (the primary
+    metric's intervals are then Stein's)."""
     contrasts = effect_contrasts(factors)
     rows = [
-        estimate({c: table.get(c, {}).get(m, {}) for c in table}, k, m) for m in metrics for k in contrasts
+        estimate({c: table.get(c, {}).get(m, {}) for c in table}, k, m, first_stage if m == primary else None)
+        for m in metrics
+        for k in contrasts
     ]
     family = [r for r in rows if r.metric == primary and r.contrast.kind != "simple"]
     for row, p in zip(family, holm([r.p for r in family])):
         row.p_holm = float(p)
+    for contrast in contrasts:  # secondary metrics: Holm within each effect, across the metrics
+        if contrast.kind == "simple":
+            continue
+        group = [r for r in rows if r.contrast == contrast and r.metric != primary]
+        for row, p in zip(group, holm([r.p for r in group])):
+            row.p_holm = float(p)
     return rows
 
 

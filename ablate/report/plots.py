@@ -32,19 +32,21 @@ def pyplot():
 
 
 def paired_difference_chart(report: Report, path: Path) -> bool:
-    shown = [v for v in report.verdicts if math.isfinite(v.diff)]
+    shown = [v.estimate for v in report.verdicts if math.isfinite(v.estimate.mean)]
     if not shown:
         return False
     plt = pyplot()
     fig, ax = plt.subplots(figsize=(max(5.5, 1.4 * len(shown) + 2), 3.6))
     x = np.arange(len(shown))
-    lows = [v.diff - v.low if math.isfinite(v.low) else 0.0 for v in shown]
-    highs = [v.high - v.diff if math.isfinite(v.high) else 0.0 for v in shown]
-    ax.bar(x, [v.diff for v in shown], 0.6, yerr=[lows, highs], capsize=4, color="tab:blue")
+    lows = [e.mean - e.low if math.isfinite(e.low) else 0.0 for e in shown]
+    highs = [e.high - e.mean if math.isfinite(e.high) else 0.0 for e in shown]
+    ax.bar(x, [e.mean for e in shown], 0.6, yerr=[lows, highs], capsize=4, color="tab:blue")
     ax.axhline(0.0, color="black", lw=0.8)
-    ax.set_xticks(x, [f"{v.cell.label(v.reference)}\n(n={v.n_paired})" for v in shown], fontsize=8)
+    labels = [f"{e.contrast.cells[0].label(e.contrast.cells[1])}\n(n={e.n})" for e in shown]
+    ax.set_xticks(x, labels, fontsize=8)
     ax.set_ylabel(f"paired difference in {report.metric}")
-    ax.set_title(f"{report.metric}: cell minus reference\nwhiskers = 95% t interval", fontsize=9)
+    method = "two-stage t" if report.first_stage else "t"
+    ax.set_title(f"{report.metric}: cell minus reference\nwhiskers = 95% {method} interval", fontsize=9)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
@@ -220,10 +222,14 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
     left.legend(fontsize=8)
     for comp in [c for c in comparisons if c.determined]:
         color = colors.get(comp.candidate, "black")
+        inside = comp.grid_inside if comp.grid_inside is not None else np.ones(len(comp.grid_x), bool)
+        x = comp.grid_x[inside]
         right.plot(
-            comp.grid_x, 100 * comp.grid_ratio, color=color, label=f"{comp.candidate} vs {comp.baseline}"
+            x, 100 * comp.grid_ratio[inside], color=color, label=f"{comp.candidate} vs {comp.baseline}"
         )
-        right.fill_between(comp.grid_x, 100 * comp.grid_low, 100 * comp.grid_high, color=color, alpha=0.2)
+        low, high = comp.grid_low[inside], comp.grid_high[inside]
+        finite = np.isfinite(low) & np.isfinite(high)
+        right.fill_between(x[finite], 100 * low[finite], 100 * high[finite], color=color, alpha=0.2)
         right.errorbar(
             [comp.x_mid],
             [100 * comp.ratio],
@@ -235,7 +241,11 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
     right.set_xscale("log")
     right.set_xlabel(label)
     right.set_ylabel(f"% of baseline's {efficiency.AXIS_NOUNS[axis]} for equal loss")
-    right.set_title("size ratio R (band: bootstrap 95%)")
+    few = any(c.approximate for c in comparisons if c.determined)
+    band = "approximate t-calibrated bootstrap 95%" if few else "t-calibrated bootstrap 95%"
+    right.set_title(
+        f"size ratio R (band: {band}, where the baseline's\nanswer lies in its swept range)", fontsize=9
+    )
     if comparisons:
         right.legend(fontsize=8)
     fig.tight_layout()

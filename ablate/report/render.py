@@ -5,8 +5,10 @@ from __future__ import annotations
 import math
 import re
 
-from . import attribution
-from .table import LOSS, Report, Verdict
+from ablate import calibration
+
+from . import attribution, wording
+from .table import LOSS, Report
 
 CSV_COLUMNS = [
     "cell",
@@ -51,55 +53,38 @@ def interval(low: float, high: float) -> str:
     return f"[{num(low)}, {num(high)}]" if math.isfinite(low) else "-"
 
 
-def resolution_clause(v: Verdict) -> str:
-    if v.resolution is None or not math.isfinite(v.low):
-        return ""
-    half = (v.high - v.low) / 2
-    word = "resolved" if half <= v.resolution else "not yet resolved"
-    return f" (half-width {half:.3g} against the resolution {v.resolution:g}: {word})"
-
-
-def verdict_sentence(v: Verdict) -> str:
-    who, ref, u = v.cell.label(v.reference), v.reference.label(v.cell), unit(v.metric)
-    verb = "lowers" if v.diff < 0 else "raises"
-    tail = f"; {v.reduced}" if v.reduced else ""
-    if v.status == "excludes zero":
-        text = (
-            f"{who} {verb} {v.metric} by {abs(v.diff):.3g}{u} against {ref} (95% CI {signed(v.low)} to "
-            f"{signed(v.high)}, {v.n_paired} paired seeds): the interval excludes zero"
-        )
-    elif v.status == "undecided":
-        text = (
-            f"{who} against {ref} on {v.metric}: undecided: the interval spans {signed(v.low)} to "
-            f"{signed(v.high)}{u} ({v.n_paired} paired seeds); it rules out lowering it by more than "
-            f"{abs(v.low):.3g} or raising it by more than {abs(v.high):.3g}"
-        )
-    elif v.status == "no spread" and v.diff == 0:
-        text = (
-            f"{who} and {ref} give the same {v.metric} in every one of {v.n_paired} paired seeds "
-            f"(difference exactly 0): no spread, so no interval"
-        )
-    elif v.status == "no spread":
-        text = (
-            f"{who} {verb} {v.metric} by {abs(v.diff):.3g}{u} against {ref} in every one of {v.n_paired} "
-            f"paired seeds: no spread across {v.n_paired} seeds, so no interval"
-        )
-    elif v.status == "one pair":
-        text = f"{who} against {ref} on {v.metric}: {signed(v.diff)}{u} on 1 paired seed: no interval"
-    elif v.status == "censored":
-        text = f"{who} against {ref} on {v.metric}: {v.censored}: no interval"
-    else:
-        text = f"{who} against {ref} on {v.metric}: no paired seeds"
-    return text + resolution_clause(v) + tail
+def verdict_sentence(report: Report, v) -> str:
+    """A verdict in one line (its sentence, direction and precision), for lists."""
+    return " ".join(line.strip() for line in wording.verdict_lines(report, v)[:2])
 
 
 def headline(report: Report) -> list[str]:
     """The first lines: a factorial grid's effects on the primary metric, else its verdicts."""
     if report.factors:
-        return attribution.effect_lines(report)
-    return [verdict_sentence(v) for v in report.verdicts] or [
-        f"only the baseline {report.baseline}: nothing to compare"
-    ]
+        return attribution.effect_lines(report) + replaced_lines(report)
+    lines = [line for v in report.verdicts for line in wording.verdict_lines(report, v)]
+    if not lines:
+        return [f"only the baseline {report.baseline}: nothing to compare"]
+    several = len(report.verdicts) > 1
+    if several:
+        lines.insert(
+            0, f"{len(report.verdicts)} comparisons against the baseline; Holm across them for direction"
+        )
+    return lines + replaced_lines(report)
+
+
+def replaced_lines(report: Report) -> list[str]:
+    """Say where the command line replaced what the recipe declared."""
+    out = []
+    if report.metric_given and report.declared_metric and report.metric != report.declared_metric:
+        out.append(
+            f"  (--metric {report.metric} replaced the recipe's primary metric {report.declared_metric})"
+        )
+    if report.resolution_given and report.declared_resolution not in (None, report.resolution):
+        out.append(
+            f"  (--resolution {report.resolution:g} replaced the recipe's {report.declared_resolution:g})"
+        )
+    return out
 
 
 def table(header: list[str], rows: list[list]) -> list[str]:
@@ -279,7 +264,8 @@ def attribution_section(report: Report, plots: list[tuple[str, str]]) -> list[st
         "",
         "### Effects on every metric",
         "",
-        "Holm's adjustment runs over the primary metric's effects.",
+        "Holm's adjustment runs over the primary metric's effects (one family), and for each effect "
+        "over the secondary metrics.",
         "",
     ]
     return md + table(header, rows) + [""]
@@ -298,7 +284,7 @@ def markdown(report: Report, plots: list[tuple[str, str]]) -> str:
     if report.factors:
         md += attribution_section(report, plots)
         md += ["## Pairwise against the baseline", ""]
-        md += [f"- {verdict_sentence(v)}." for v in report.verdicts] + [""]
+        md += [f"- {verdict_sentence(report, v)}" for v in report.verdicts] + [""]
     if not report.factors:
         md += images(plots, "paired_difference.png", "over_training.png")
     md += ["", "## Probe families", ""]
@@ -312,6 +298,8 @@ def markdown(report: Report, plots: list[tuple[str, str]]) -> str:
         for r in report.rows
         if r.metric == report.metric and not r.is_reference
     ]
+    md += ["", "## How far to trust these verdicts", ""]
+    md += [f"- {line}" for line in wording.trust_lines(report, calibration.load())]
     md += ["", "## Fairness: size and compute per cell", ""] + fairness_lines(report)
     if report.sweep:
         md += ["", "## Efficiency across the sweep", ""] + efficiency_lines(report)
@@ -432,7 +420,7 @@ def console(report: Report, with_headline: bool = True) -> str:
     lines = named(report, headline(report)) if with_headline else []
     if report.factors:
         lines += attribution.training_lines(report) + [attribution.convention_line(), ""]
-        lines += [f"pairwise: {verdict_sentence(v)}" for v in report.verdicts]
+        lines += [f"pairwise: {verdict_sentence(report, v)}" for v in report.verdicts]
     else:
         lines += attribution.training_lines(report)
     header = ["cell", "completed", report.metric, "95% CI", "paired n", "diff", "95% CI of diff"]

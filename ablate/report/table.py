@@ -19,10 +19,11 @@ import numpy as np
 
 from ablate import efficiency
 from ablate.cells import Cell
-from ablate.factors import Factor
+from ablate.factors import Factor, pair_contrast
 from ablate.stats import holm, mean_ci, paired_difference, seeds_needed_range
 
 from . import effects as fx
+from . import verdicts
 from .load import LoadedGrid, ReportError, Run, folder_cell, is_number
 
 LOSS = "final_val_loss"
@@ -108,21 +109,6 @@ class MetricRow:
 
 
 @dataclass
-class Verdict:
-    cell: Cell
-    reference: Cell
-    metric: str
-    n_paired: int
-    diff: float
-    low: float
-    high: float
-    resolution: float | None
-    status: str  # "excludes zero" | "undecided" | "no spread" | "one pair" | "censored" | "missing"
-    reduced: str = ""
-    censored: str = ""
-
-
-@dataclass
 class Context:
     cell: Cell
     key: str
@@ -183,6 +169,12 @@ class Report:
     effects: list = field(default_factory=list)  # [effects.Estimate], every metric
     missing: list = field(default_factory=list)  # [Cell] of the factorial without a completed run
     over_training: list = field(default_factory=list)  # [effects.Trajectory] on the primary metric
+    effect_verdicts: list = field(default_factory=list)  # [verdicts.Verdict]: the factorial headline
+    first_stage: list | None = None  # seeds of a two-stage design's first round (seed rounds)
+    metric_given: bool = False  # --metric on the command line
+    declared_metric: str | None = None  # the recipe's grid.primary_metric
+    resolution_given: bool = False
+    declared_resolution: float | None = None
     runs: list = field(default_factory=list, repr=False)
 
 
@@ -305,11 +297,12 @@ def metric_rows(table, refs: dict[Cell, Cell], primary: tuple[str, float]) -> li
     ]
 
 
-def adjust_and_count(rows: list[MetricRow]) -> list[TestCount]:
-    """Holm-adjusted p-values within each comparison; counts of p < 0.05 before and after."""
+def adjust_and_count(rows: list[MetricRow], primary: str) -> list[TestCount]:
+    """Holm-adjusted p-values of the secondary metrics within each comparison (the primary metric
+    is tested alone, see ``verdicts``); counts of p < 0.05 before and after."""
     groups: dict[tuple, list[MetricRow]] = defaultdict(list)
     for row in rows:
-        if not row.is_reference:
+        if not row.is_reference and row.metric != primary:
             groups[(row.cell, row.reference)].append(row)
     counts = []
     for (cell, ref), members in sorted(groups.items()):
@@ -336,32 +329,6 @@ def mark_reduced(rows: list[MetricRow], cells: list[CellRuns]) -> None:
         most = max(launched.get(row.cell, 0), launched.get(row.reference, 0))
         if not row.is_reference and row.n_paired < most:
             row.reduced = f"paired on {row.n_paired} of {most} launched seeds"
-
-
-def verdict_of(row: MetricRow) -> Verdict:
-    if row.censored:
-        status = "censored"
-    elif row.n_paired == 0:
-        status = "missing"
-    elif row.no_spread:
-        status = "no spread"
-    elif row.n_paired < 2:
-        status = "one pair"
-    else:
-        status = "excludes zero" if (row.diff_low > 0 or row.diff_high < 0) else "undecided"
-    return Verdict(
-        row.cell,
-        row.reference,
-        row.metric,
-        row.n_paired,
-        row.diff,
-        row.diff_low,
-        row.diff_high,
-        row.resolution,
-        status,
-        row.reduced,
-        row.censored,
-    )
 
 
 def context_values(table) -> list[Context]:
@@ -503,6 +470,7 @@ def build(
     loaded: LoadedGrid, resolution: float | None = None, resamples: int = 1000, seed: int = 0
 ) -> Report:
     record = loaded.record
+    resolution_asked = resolution
     resolution = resolution or (record.resolution if record else None)
     resolution = resolution or resolution_for(loaded.metric, "", None, [])
     table = values_by_cell(loaded.runs)
@@ -513,8 +481,7 @@ def build(
     cells = cells_of(loaded)
     rows = metric_rows(table, refs, (loaded.metric, resolution))
     mark_reduced(rows, cells)
-    tests = adjust_and_count(rows)
-    verdicts = [verdict_of(r) for r in rows if r.metric == loaded.metric and not r.is_reference]
+    tests = adjust_and_count(rows, loaded.metric)
     report = Report(
         name=record.name if record else loaded.folder.name,
         folder=str(loaded.folder),
@@ -525,7 +492,7 @@ def build(
         refs=refs,
         cells=cells,
         rows=rows,
-        verdicts=verdicts,
+        verdicts=[],
         tests=tests,
         context=context_values(table),
         fairness=fairness_rows(loaded.runs, refs, record.tolerance if record else 0.02),
@@ -535,7 +502,13 @@ def build(
         sweep=sweep,
         runs=loaded.runs,
     )
-    attribute(report, table, record)
+    report.metric_given, report.resolution_given = loaded.metric_given, resolution_asked is not None
+    report.declared_metric = record.primary_metric if record else None
+    report.declared_resolution = record.resolution if record else None
+    first_stage = list(record.first_stage) if record and record.first_stage else None
+    report.first_stage = first_stage
+    report.verdicts = pairwise_verdicts(report, table, first_stage)
+    attribute(report, table, record, first_stage)
     if sweep:
         report.efficiency, report.fits, report.sweep_designs, report.efficiency_notes = efficiency_results(
             loaded.runs, sweep, loaded.baseline, resamples, seed
@@ -543,14 +516,45 @@ def build(
     return report
 
 
-def attribute(report: Report, table: dict, record) -> None:
-    """A factorial grid's effects on every metric, the cells it misses, and the primary metric's
-    effects over training; a pairwise grid's differences over training."""
+def budget_tokens(runs: list[Run]) -> float:
+    """The grid's training budget in tokens (the most any usable run trained)."""
+    tokens = [float(r.summary.tokens) for r in runs if r.usable and is_number(r.summary.tokens)]
+    return max(tokens) if tokens else math.nan
+
+
+def pairwise_verdicts(report: Report, table: dict, first_stage: list | None) -> list:
+    """Every cell against its reference on the primary metric; the primary rows of the table take
+    the verdicts' Holm-adjusted p-values, so the headline and the appendix agree."""
+    notes = {
+        pair_contrast(r.cell, r.reference): (r.reduced, r.censored)
+        for r in report.rows
+        if r.metric == report.metric and not r.is_reference
+    }
+    estimates = verdicts.primary_estimates(table, fx.pair_contrasts(report.refs), report.metric, first_stage)
+    found = verdicts.primary_verdicts(
+        table, estimates, report.resolution, bool(first_stage), budget_tokens(report.runs), notes
+    )
+    by_pair = {v.contrast: v for v in found}
+    for row in report.rows:
+        v = by_pair.get(pair_contrast(row.cell, row.reference)) if row.metric == report.metric else None
+        if v is not None:
+            row.p_holm = v.estimate.p_holm
+    return found
+
+
+def attribute(report: Report, table: dict, record, first_stage: list | None) -> None:
+    """A factorial grid's effects on every metric (the primary family as verdicts), the cells it
+    misses, and the primary metric's effects over training; a pairwise grid's differences over
+    training."""
     report.factors = [Factor.from_dict(f) for f in (record.factors if record else [])]
     if report.factors:
         metrics = list(dict.fromkeys(r.metric for r in report.rows))
-        report.effects = fx.effect_estimates(table, report.factors, metrics, report.metric)
+        report.effects = fx.effect_estimates(table, report.factors, metrics, report.metric, first_stage)
         report.missing = fx.missing_cells(table, report.factors)
+        family = [e for e in report.effects if e.metric == report.metric and e.contrast.kind != "simple"]
+        report.effect_verdicts = verdicts.primary_verdicts(
+            table, family, report.resolution, bool(first_stage), budget_tokens(report.runs)
+        )
         contrasts = [e.contrast for e in report.effects if e.metric == report.metric]
     else:
         contrasts = fx.pair_contrasts(report.refs)

@@ -22,6 +22,7 @@ import torch
 from omegaconf import OmegaConf
 
 from . import records
+from .attention.common import use_kernels
 from .cells import level_text
 from .checks import one_line
 from .compute import account, steps_from_budget
@@ -542,7 +543,7 @@ def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> records.RunSumm
     checkpoint is damaged or belongs to another config. The TensorBoard writer is closed (flushed)
     on every way out: the event files of a diverged, failed or interrupted run are kept whole.
     """
-    with StopSignals() as stops:
+    with StopSignals() as stops, use_kernels(cfg.runtime.get("kernels", "fast")):
         state, saved = prepare(cfg, info, parallel_jobs)
         if saved is not None:
             resume(state, saved)

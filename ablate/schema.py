@@ -16,6 +16,7 @@ from hydra.core.config_store import ConfigStore
 from toy_corpus.config import LogbookSchema
 from toy_corpus.drills import DrillConfig
 
+from .attention.common import KERNELS
 from .checks import positive_int, positive_number
 
 
@@ -64,6 +65,7 @@ class RuntimeSchema:
     device: str = "cpu"
     threads: Optional[int] = None
     compile: bool = False
+    kernels: str = "fast"
     progress: bool = True
     cache_dir: Optional[str] = None
     stop_after_steps: Optional[int] = None  # stop early as if interrupted (tests, dry runs)
@@ -164,6 +166,8 @@ def check_ranges(cfg) -> None:
         raise ConfigError(f"runtime.device={r.device!r}: allowed: cpu, cuda, cuda:<index>")
     if r.threads is not None:
         _positive("runtime.threads", r.threads, int)
+    if r.kernels not in KERNELS:
+        raise ConfigError(f"runtime.kernels={r.kernels!r}: allowed: {', '.join(KERNELS)}")
     if r.stop_after_steps is not None:
         _positive("runtime.stop_after_steps", r.stop_after_steps, int)
     if cfg.attention is None:

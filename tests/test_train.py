@@ -152,3 +152,15 @@ def test_bad_config_exits_2_with_one_line(tmp_path, cache, args, word):
     assert len(lines) == 1, proc.stderr
     assert "Traceback" not in proc.stderr and word in lines[0]
     assert not (tmp_path / "runs").exists()  # nothing trained, no run folder made
+
+
+def test_reference_kernels_train_to_the_same_losses(smoke_runs, tmp_path, cache):
+    # runtime.kernels=reference runs the published equations under plain autograd over the full
+    # window; a short run must give the fast kernels' losses (same seed, same data) to 1e-5.
+    proc = train(["attention=differential", "runtime.kernels=reference", *SMOKE], tmp_path, cache)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    (run_dir,) = run_dirs(tmp_path)
+    ref, fast = summary(run_dir), summary(smoke_runs["differential"])
+    assert ref["step"] == fast["step"] > 0
+    for key in ("final_train_loss", "final_val_loss"):
+        assert abs(ref[key] - fast[key]) <= 1e-5, key

@@ -1,4 +1,5 @@
-"""Pieces shared by the attention blocks: argument checks, the causal mask and causal query chunks."""
+"""Pieces shared by the attention blocks: the kernels switch, argument checks, the causal mask,
+causal query chunks and the standard block's fast kernel."""
 
 from __future__ import annotations
 
@@ -7,37 +8,37 @@ import contextvars
 
 import torch
 
-from ..checks import positive_int
-
-_FULL_WINDOW = contextvars.ContextVar("full_window", default=False)
+KERNELS = ("fast", "reference")
+_KERNELS = contextvars.ContextVar("kernels", default="fast")
 
 
 @contextlib.contextmanager
-def full_window_products():
-    """Inside this context the shipped blocks compute the products their FLOP accounting counts
-    (the nominal convention): :func:`causal_chunks` returns one range, so nothing of the masked
-    half is skipped, and the differential block forms both value products instead of one product
-    with the difference map (:func:`nominal_products`). Used where torch's FLOP counter must see
-    the nominal products (``tests/test_compute.py``); training never enters it."""
-    token = _FULL_WINDOW.set(True)
+def use_kernels(name: str):
+    """Choose how the shipped blocks compute attention inside this context (``runtime.kernels``):
+
+    - ``fast`` (default): causal query ranges with hand-written backwards
+      (:class:`CausalAttention`, ``CausalDifference``), which skip most of the masked half;
+    - ``reference``: the published equations under plain autograd over the full window (the
+      products the FLOP accounting counts). Slower; the fast kernels are tested against it,
+      and ``h2h-train runtime.kernels=reference`` trains with it end to end.
+    """
+    if name not in KERNELS:
+        raise ValueError(f"kernels={name!r} must be one of {', '.join(KERNELS)}")
+    token = _KERNELS.set(name)
     try:
         yield
     finally:
-        _FULL_WINDOW.reset(token)
+        _KERNELS.reset(token)
 
 
-def nominal_products() -> bool:
-    """True inside :func:`full_window_products`."""
-    return _FULL_WINDOW.get()
+def reference_kernels() -> bool:
+    """True inside ``use_kernels("reference")``."""
+    return _KERNELS.get() == "reference"
 
 
 def require_divisible(name: str, value: int, divisor: int, what: str) -> None:
     if not isinstance(value, int) or value <= 0 or value % divisor:
         raise ValueError(f"{name}={value} must be a positive multiple of {divisor} ({what})")
-
-
-def require_positive_int(name: str, value) -> None:
-    positive_int(name, value)
 
 
 def require_bool(name: str, value) -> None:
@@ -61,7 +62,7 @@ def future_bias(time: int, like: torch.Tensor) -> torch.Tensor:
     return torch.full((time, time), float("-inf"), dtype=like.dtype, device=like.device).triu(1)
 
 
-def causal_chunks(time: int, min_len: int = 32, max_chunks: int = 8) -> list[tuple[int, int]]:
+def causal_chunks(time: int, min_len: int = 32, max_chunks: int = 8) -> tuple[tuple[int, int], ...]:
     """Query ranges ``[start, end)`` covering ``0..time``: at most ``max_chunks`` ranges of at
     least ``min_len`` queries (the last may be shorter).
 
@@ -69,13 +70,16 @@ def causal_chunks(time: int, min_len: int = 32, max_chunks: int = 8) -> list[tup
     over later keys are all masked. With ``c`` equal ranges the score and value products cover
     ``(c + 1) / (2c)`` of the full window (9/16 for 8 ranges); more ranges skip more but cost more
     calls. Ranges of 32 queries (``min_len`` 32, ``max_chunks`` 8: 2 ranges at seq_len 64, 8 at
-    256) were the fastest on CPU for both shipped blocks at both sizes (PERFORMANCE.md). Inside
-    :func:`full_window_products` it returns ``[(0, time)]``.
+    256) were the fastest on CPU for both shipped blocks at both sizes (PERFORMANCE.md). The fast
+    kernels write their outputs and query gradients into uninitialised buffers range by range,
+    so the ranges must tile ``0..time`` exactly; that is checked here, where they are made.
     """
-    if nominal_products():
-        return [(0, time)]
     length = max(min_len, -(-time // max_chunks))
-    return [(start, min(start + length, time)) for start in range(0, time, length)]
+    ranges = tuple((start, min(start + length, time)) for start in range(0, time, length))
+    ends = [0] + [e for _, e in ranges]
+    if not (time > 0 and all(s == ends[i] for i, (s, _) in enumerate(ranges)) and ends[-1] == time):
+        raise AssertionError(f"causal ranges {ranges} do not tile 0..{time}")
+    return ranges
 
 
 def range_probabilities(q, k, bias, scale: float, start: int, end: int) -> torch.Tensor:

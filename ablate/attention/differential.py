@@ -7,6 +7,7 @@ import math
 import torch
 from torch import nn
 
+from ..checks import positive_int
 from ..norm import RMSNorm
 from .base import ProjectedAttention
 from .common import (
@@ -16,11 +17,10 @@ from .common import (
     causal_softmax,
     future_bias,
     key_grad_buffers,
-    nominal_products,
     range_probabilities,
+    reference_kernels,
     require_bool,
     require_divisible,
-    require_positive_int,
 )
 
 LAMBDA_MODES = ("learned", "fixed")
@@ -93,7 +93,7 @@ class DifferentialAttention(ProjectedAttention):
         lambda_std: float = 0.1,
         rope_base: float = 10000.0,
     ):
-        require_positive_int("head_dim", head_dim)
+        positive_int("head_dim", head_dim)
         require_bool("head_norm", head_norm)
         require_divisible("d_model", d_model, 2 * head_dim, f"2 * head_dim = {2 * head_dim}")
         if lambda_mode not in LAMBDA_MODES:
@@ -168,18 +168,18 @@ class DifferentialAttention(ProjectedAttention):
         q, k = self._grouped_queries_keys(x)
         v = self._values(x).reshape(b * self.n_heads, n, 2 * self.head_dim)
         lam = self.lambda_value().to(x.dtype)
-        if nominal_products():
-            o = self._two_value_products(q, k, v, lam)
+        if reference_kernels():  # the equation under autograd, full window (runtime.kernels=reference)
+            o = self._difference_map(q, k, lam) @ v
         else:
-            o = CausalDifference.apply(q, k, v, lam, tuple(causal_chunks(n)))
+            o = CausalDifference.apply(q, k, v, lam, causal_chunks(n))
         return self._finish(o.view(b, self.n_heads, n, 2 * self.head_dim), x.shape)
 
-    def _two_value_products(self, q, k, v, lam) -> torch.Tensor:
-        """``A1 V - lambda A2 V`` under autograd, as the FLOP accounting counts it (two value
-        products over the full window); only inside ``full_window_products()``."""
+    def _difference_map(self, q, k, lam) -> torch.Tensor:
+        """``A1 - lambda A2`` per head, ``[batch * heads, time, time]``, from the grouped queries and
+        keys (each head's two groups next to each other)."""
         p = causal_softmax(torch.bmm(q, k.transpose(1, 2)) * self.head_dim**-0.5)
-        both = torch.bmm(p.view(v.shape[0], -1, p.shape[-1]), v).view(v.shape[0], 2, -1, v.shape[-1])
-        return both[:, 0] - lam * both[:, 1]
+        p = p.view(-1, 2, p.shape[-2], p.shape[-1])
+        return p[:, 0] - lam * p[:, 1]
 
     def attention_weights(self, x: torch.Tensor) -> torch.Tensor:
         q1, k1, q2, k2 = self._queries_keys(x)
@@ -195,10 +195,11 @@ class DifferentialAttention(ProjectedAttention):
         return q @ k.transpose(-2, -1) / math.sqrt(self.head_dim)
 
     def core_flops_per_token(self, seq_len: int) -> float:
-        """Forward FLOPs per token of the score and value products over a full window:
-        scores for 2h query groups of width d, and two value products of width 2d per head."""
+        """Forward FLOPs per token of the products the equation needs over a full window: scores
+        for 2h query groups of width d, and one value product of width 2d per head (the
+        difference map ``A1 - lambda A2`` is formed first, so ``V`` is multiplied once)."""
         scores = 2.0 * seq_len * (2 * self.n_heads * self.head_dim)
-        values = 2 * (2.0 * seq_len * (self.n_heads * 2 * self.head_dim))
+        values = 2.0 * seq_len * (self.n_heads * 2 * self.head_dim)
         return scores + values
 
 
@@ -213,7 +214,7 @@ class CausalDifference(torch.autograd.Function):
     scores of both groups (the causal mask as a -inf bias) and one softmax give ``A1, A2``; the
     difference map ``D = A1 - lambda A2`` is formed once and multiplied with V in one ``bmm``
     (the same numbers as ``A1 V - lambda A2 V`` in half the value products; the FLOP accounting
-    still counts both products, the nominal convention). The backward is the chain rule written
+    counts this one product, as the equation needs). The backward is the chain rule written
     out with the same saving: ``dV = D^T dO``; one product ``dP = dO V^T`` serves both maps
     (``dA1 = dP``, ``dA2 = -lambda dP``); the softmax step ``dS = A * (dA - rowsum(dA * A))``
     takes ``s = rowsum(dP * A2)`` and ``rowsum(dO * O) + lambda s`` as its row terms, and

@@ -45,6 +45,7 @@ OWN_PLOTS = (
     "efficiency.png",
     "interaction.png",
     "over_training.png",
+    "tokens_to_half.png",
 )
 
 
@@ -61,6 +62,8 @@ def write_plots(report: table.Report, plot_dir: Path) -> list[tuple[str, str]]:
     what = "effects" if report.factors else "paired differences"
     if plots.over_training_plot(report, names, plot_dir / OWN_PLOTS[6]):
         written.append((f"{what} in {report.metric} over training", OWN_PLOTS[6]))
+    if plots.km_plot(report, table.values_by_cell(report.runs), plot_dir / OWN_PLOTS[7]):
+        written.append(("tokens to halfway (Kaplan-Meier)", OWN_PLOTS[7]))
     cells = sorted(report.refs)
     labels, _ = plots.short_labels(cells)
     if plots.plot_val_loss(report.runs, plot_dir / OWN_PLOTS[1], labels):

@@ -322,3 +322,47 @@ def over_training_plot(report: Report, names: dict, path: Path) -> bool:
     fig.savefig(path, dpi=110)
     plt.close(fig)
     return True
+
+
+def km_plot(report: Report, table: dict, path: Path) -> bool:
+    """Kaplan-Meier curves of the tokens to the halfway level, one per cell: the share of seeds
+    that have not reached it yet (not reached by the budget = censored there, marked +)."""
+    from ablate.stats import kaplan_meier
+
+    from .table import budget_tokens
+    from .verdicts import formation_family
+
+    family = formation_family(report.metric)
+    budget = budget_tokens(report.runs)
+    if family is None or not math.isfinite(budget):
+        return False
+    curves = {}
+    for cell, per in sorted(table.items()):
+        flags, times = per.get(f"{family}/half_reached", {}), per.get(f"{family}/tokens_to_half", {})
+        if flags:
+            t = [times.get(s, budget) if flags[s] > 0.5 else budget for s in flags]
+            curves[cell] = (t, [flags[s] > 0.5 for s in flags])
+    if not curves:
+        return False
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(7, 4))
+    labels, _ = short_labels(list(curves))
+    for cell, (t, observed) in curves.items():
+        x, s = [0.0], [1.0]
+        if any(observed):
+            event_t, surv, _ = kaplan_meier(t, observed)
+            x, s = [0.0, *event_t.tolist()], [1.0, *surv.tolist()]
+        (line,) = ax.step(
+            x + [budget], s + [s[-1]], where="post", label=f"{labels[cell]} ({sum(observed)}/{len(t)})"
+        )
+        if not all(observed):
+            ax.plot([budget], [s[-1]], "+", color=line.get_color(), markersize=10)
+    ax.set_xlabel("tokens seen")
+    ax.set_ylabel("share of seeds not yet at halfway")
+    ax.set_ylim(-0.02, 1.02)
+    ax.set_title("Kaplan-Meier: tokens to the halfway level (+ = not reached by the budget)", fontsize=9)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True

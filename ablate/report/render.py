@@ -258,7 +258,7 @@ def bullets(lines: list[str], end: str = "") -> list[str]:
 def attribution_section(report: Report, plots: list[tuple[str, str]]) -> list[str]:
     md = ["## What each part did", ""]
     md += [attribution.convention_line(), ""]
-    md += images(plots, "interaction.png", "over_training.png")
+    md += images(plots, "interaction.png", "over_training.png", "tokens_to_half.png")
     header, rows = attribution.effects_table(report)
     md += [
         "",
@@ -286,7 +286,7 @@ def markdown(report: Report, plots: list[tuple[str, str]]) -> str:
         md += ["## Pairwise against the baseline", ""]
         md += [f"- {verdict_sentence(report, v)}" for v in report.verdicts] + [""]
     if not report.factors:
-        md += images(plots, "paired_difference.png", "over_training.png")
+        md += images(plots, "paired_difference.png", "over_training.png", "tokens_to_half.png")
     md += ["", "## Probe families", ""]
     md += family_tables(report)
     md += ["## Cells and seeds", "", f"- {rounds_line(report)}; recipe {report.recipe or 'not stated'}."]

@@ -19,6 +19,7 @@ import numpy as np
 import torch
 
 from .checks import one_line
+from .probes.common import evaluating
 from .schema import ConfigError
 
 
@@ -38,11 +39,10 @@ def masked_loss_sum(
 def evaluate_loss(
     model, tokens: torch.Tensor, mask: torch.Tensor | None, batch_size: int
 ) -> tuple[float, np.ndarray]:
-    """Mean held-out loss over the (masked) targets and the argmax predictions, in eval mode."""
-    was_training = model.training
-    model.eval()
+    """Mean held-out loss over the (masked) targets and the argmax predictions, in eval mode (the
+    previous mode is restored on every way out)."""
     total, count, predictions = 0.0, 0, []
-    with torch.no_grad():
+    with evaluating(model):
         for i in range(0, len(tokens), batch_size):
             batch = tokens[i : i + batch_size]
             logits = model(batch[:, :-1])
@@ -50,7 +50,6 @@ def evaluate_loss(
             s, n = masked_loss_sum(logits, batch[:, 1:], part)
             total, count = total + s, count + n
             predictions.append(logits.argmax(-1).cpu().numpy())
-    model.train(was_training)
     return total / max(count, 1), np.concatenate(predictions)
 
 
@@ -133,6 +132,7 @@ class DrillSource:
         level = float(self.drill.copy_level)
         out = {
             "drill/auc": curves.normalised_area(tokens, acc, budget_tokens, level),
+            "drill/acc": float(acc[-1]),  # held-out accuracy at the last evaluation (the budget)
             "drill/copy_level": level,
         }
         for name, threshold in (("half", curves.halfway(level)), ("90", 0.9)):

@@ -205,19 +205,20 @@ def baseline_overrides(run_overrides: list[str], baseline: str) -> list[str]:
     ]
 
 
-def baseline_flops_per_token(resolved: dict, run_overrides: list[str]) -> float:
-    """Training FLOPs per token of the grid's declared baseline at this run's other settings: what
-    ``budget.tokens`` buys when the budget is matched in FLOPs and no FLOPs figure is given."""
-    from .config import compose_isolated
-
-    baseline = (resolved.get("grid") or {}).get("baseline")
+def price_budget(cfg, overrides: list[str], baseline: str | None) -> float | None:
+    """The training FLOPs ``budget.tokens`` buys when the budget is matched in FLOPs and no FLOPs
+    figure is given: tokens x the FLOPs per token of the baseline cell at this job's other
+    settings. None when the job needs no price. Composed here, in the pre-flight, so a run never
+    composes a second config."""
+    if cfg.budget.match != "flops" or cfg.budget.flops is not None:
+        return None
     if not baseline:
         raise ConfigError(
             "budget.match=flops with budget.flops=null prices budget.tokens at the baseline's FLOPs "
             "per token, but grid.baseline is not set; set budget.flops or grid.baseline"
         )
-    cfg = compose_isolated(baseline_overrides(run_overrides, baseline))
-    return accounting_of(cfg).flops_per_token
+    base_cfg = compose_checked(baseline_overrides(overrides, baseline))
+    return float(cfg.budget.tokens) * accounting_of(base_cfg).flops_per_token
 
 
 def compose_checked(overrides: list[str]):

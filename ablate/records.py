@@ -125,6 +125,8 @@ class GridRecord:
     tolerance: float = 0.02
     sweep: dict | None = None
     jobs: int = 0
+    parallel: int = 1  # runs at a time under the chosen launcher
+    budget_flops: dict = field(default_factory=dict)  # cell -> FLOPs budget priced by the pre-flight
     seeds: list = field(default_factory=list)
     fairness: list = field(default_factory=list)
     running_elsewhere: list = field(default_factory=list)

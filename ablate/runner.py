@@ -41,6 +41,7 @@ class RunInfo:
     choices: dict  # config-group choices, e.g. {"attention": "differential", "model": "tiny"}
     cell: str  # grid cell name (the run's overrides without the seed)
     overrides: list
+    slot: int | None = None  # under a parallel launcher: which of its n_jobs lines the progress bar uses
 
 
 @dataclass
@@ -179,16 +180,17 @@ def check_fits(model, saved: dict, path: Path) -> None:
 # --- prepare ---------------------------------------------------------------------------------
 
 
-def plan_steps(resolved: dict, info: RunInfo, flops_per_token: float, tokens_per_step: int) -> int:
-    """Steps the budget buys. With ``budget.match=flops`` and no FLOPs figure, ``budget.tokens`` is
-    priced at the FLOPs per token of the grid's declared baseline (``grid.baseline``)."""
+def plan_steps(resolved: dict, flops_per_token: float, tokens_per_step: int) -> int:
+    """Steps the budget buys (``budget.match=flops`` needs ``budget.flops``, which the entry point
+    prices in the pre-flight when the config leaves it null)."""
     budget = resolved["budget"]
-    flops = budget["flops"]
-    if budget["match"] == "flops" and flops is None:
-        from .grid import baseline_flops_per_token
+    if budget["match"] == "flops" and budget["flops"] is None:
+        from .schema import ConfigError
 
-        flops = budget["tokens"] * baseline_flops_per_token(resolved, info.overrides)
-    return steps_from_budget(budget["match"], tokens_per_step, flops_per_token, budget["tokens"], flops)
+        raise ConfigError("budget.flops: null with budget.match=flops; h2h-train prices it before a run")
+    return steps_from_budget(
+        budget["match"], tokens_per_step, flops_per_token, budget["tokens"], budget["flops"]
+    )
 
 
 def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, dict | None]:
@@ -213,7 +215,7 @@ def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, di
     model = build_model(cfg, source.vocab_size)
     acc = account(model, source.seq_len)
     tokens_per_step = batch_size * source.seq_len
-    total_steps = plan_steps(resolved, info, acc.flops_per_token, tokens_per_step)
+    total_steps = plan_steps(resolved, acc.flops_per_token, tokens_per_step)
     model.to(device)
     o = resolved["optim"]
     optimizer = build_optimizer(model, o["lr"], o["betas"], o["weight_decay"], o["eps"])
@@ -532,6 +534,7 @@ def progress_bar(state: RunState):
         disable=not state.resolved["runtime"]["progress"],
         dynamic_ncols=True,
         leave=False,
+        position=state.info.slot,
     )
 
 

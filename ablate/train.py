@@ -37,6 +37,9 @@ PASS_THROUGH = (
     "--version",
 )
 EXIT_CONFIG = 2
+# A single run's FLOPs budget when budget.match=flops leaves budget.flops null: priced by the
+# pre-flight (which composes the baseline's config) and read by the run in the same process.
+_SINGLE_RUN_FLOPS: float | None = None
 
 
 def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
@@ -55,12 +58,22 @@ def preflight(argv: list[str]) -> records.GridRecord | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
     from omegaconf import OmegaConf
 
-    from .grid import check_cells, check_fairness, compose_checked, expand_jobs, find_baseline, output_folder
+    from .grid import (
+        check_cells,
+        check_fairness,
+        compose_checked,
+        expand_jobs,
+        find_baseline,
+        output_folder,
+        price_budget,
+    )
 
     multirun, design, hydra_side = _split_argv(argv)
     if not multirun:
-        compose_checked(design)
+        cfg = compose_checked(design)
         _check_free(output_folder(design + hydra_side, multirun=False))
+        global _SINGLE_RUN_FLOPS
+        _SINGLE_RUN_FLOPS = price_budget(cfg, design, cfg.grid.baseline)
         return None
     jobs, base, branches = expand_jobs(design, hydra_side)
     cells = check_cells(jobs)
@@ -68,6 +81,7 @@ def preflight(argv: list[str]) -> records.GridRecord | None:
     factors = grid_factors(grid, cells)
     base_cell = find_baseline(cells, grid.baseline or reference_cell(factors))
     rows = check_fairness(cells, base_cell, grid.tolerance, list(grid.unequal_axes))
+    prices = {str(c.cell): price_budget(c.cfg, c.overrides, str(base_cell.cell)) for c in cells}
     return records.GridRecord(
         name=str(grid.name),
         dir=str(output_folder(design + hydra_side, multirun=True)),
@@ -82,6 +96,8 @@ def preflight(argv: list[str]) -> records.GridRecord | None:
         tolerance=grid.tolerance,
         sweep=OmegaConf.to_container(grid.sweep) if grid.sweep is not None else None,
         jobs=len(jobs),
+        budget_flops={k: v for k, v in prices.items() if v is not None},
+        parallel=_parallel_jobs(base.hydra.launcher),
         branches=branches,
         seeds=sorted({_seed_of(j, base.seed) for j in jobs}),
         fairness=rows,
@@ -153,13 +169,14 @@ def _task_impl(cfg) -> records.RunSummary | None:
     # in a grid, the cell is the run's values of the keys the grid sweeps (the pre-flight's grid.json)
     record = records.read_grid(Path(os.path.abspath(hc.sweep.dir))) if in_grid else None
     cell = Cell.from_overrides(overrides, record.varied if record else None)
-    info = RunInfo(run_dir=run_dir, choices=choices, cell=str(cell), overrides=overrides)
-    n_jobs = hc.launcher.get("n_jobs") if "n_jobs" in hc.launcher else None
-    if n_jobs is not None and n_jobs <= 0:
-        n_jobs = os.cpu_count()
+    n_jobs = _parallel_jobs(hc.launcher) if "n_jobs" in hc.launcher else None
+    slot = int(hc.job.num) % n_jobs if in_grid and n_jobs and n_jobs > 1 else None
+    info = RunInfo(run_dir=run_dir, choices=choices, cell=str(cell), overrides=overrides, slot=slot)
 
     from omegaconf import OmegaConf
 
+    if cfg.budget.match == "flops" and cfg.budget.flops is None:  # priced by the pre-flight
+        cfg.budget.flops = record.budget_flops.get(str(cell)) if record else _SINGLE_RUN_FLOPS
     fingerprint = records.config_fingerprint(OmegaConf.to_container(cfg, resolve=True))
     done = records.read_summary(run_dir)
     if done and done.status in ("completed", "diverged") and done.fingerprint == fingerprint:
@@ -320,7 +337,8 @@ def _main(argv: list[str] | None = None) -> None:
             Path(grid.dir).mkdir(parents=True, exist_ok=True)
             (Path(grid.dir) / ELSEWHERE).unlink(missing_ok=True)  # notes of an earlier launch
             records.write_grid(grid)
-            print(f"grid {grid.name}: {grid.jobs} runs, baseline {grid.baseline}, into {grid.dir}")
+            at_once = f"{grid.parallel} at a time" if grid.parallel > 1 else "one at a time"
+            print(f"grid {grid.name}: {grid.jobs} runs, {at_once}, into {grid.dir}; baseline {grid.baseline}")
             print(format_table(grid.fairness), flush=True)
     launch = _launcher(grid.branches if grid is not None else [[]])
     launch(argv)
@@ -329,6 +347,14 @@ def _main(argv: list[str] | None = None) -> None:
 
         more_rounds(grid, argv, launch)
         _grid_epilogue(Path(grid.dir))
+
+
+def _parallel_jobs(launcher) -> int:
+    """How many runs a launcher config runs at once (joblib's ``n_jobs``; <= 0 means all cores)."""
+    n_jobs = launcher.get("n_jobs") if "n_jobs" in launcher else None
+    if n_jobs is not None and n_jobs <= 0:
+        return os.cpu_count() or 1
+    return int(n_jobs or 1)
 
 
 def _launcher(branches: list[list[str]]):

@@ -7,15 +7,8 @@ import torch
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "tests"))
 
-NAMED_ATTENTION = [
-    "standard",
-    "standard_head_norm",
-    "standard_wide_heads",
-    "differential",
-    "differential_no_head_norm",
-    "differential_fixed_lambda",
-    "differential_constant_init",
-]
+# Every attention choice the package ships: one YAML each under conf/attention/.
+NAMED_ATTENTION = sorted(p.stem for p in (ROOT / "conf" / "attention").glob("*.yaml"))
 
 
 @pytest.fixture(autouse=True)

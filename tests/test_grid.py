@@ -10,6 +10,7 @@ import pytest
 from scipy import stats as sps
 from trainer_helpers import ROOT, SMALL_DATA, run_dirs, summary, train
 
+from ablate import records
 from ablate.schema import ConfigError
 from ablate.train import preflight
 
@@ -219,3 +220,32 @@ def test_factor_levels_go_to_the_hparams_table():
         "factor/attention": "standard",
         "factor/attention.lambda_mode": "-",
     }
+
+
+@pytest.mark.e2e
+def test_flop_matched_budgets_are_priced_before_the_runs(tmp_path, cache):
+    # budget.match=flops with budget.flops=null: the pre-flight prices budget.tokens at the
+    # baseline's FLOPs per token (the run composes no second config), so the narrower model trains
+    # on more tokens for the same training FLOPs, and config.yaml says what it was given.
+    proc = train(
+        [
+            "-m",
+            "attention=standard",
+            "model.d_model=64,128",
+            "grid.baseline='model.d_model=128'",
+            "grid.unequal_axes=[model.d_model]",
+            "budget.match=flops",
+            *SMOKE,
+        ],
+        tmp_path,
+        cache,
+    )
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    runs = {summary(r)["cell"]: summary(r) for r in run_dirs(tmp_path)}
+    narrow, wide = runs["model.d_model=64"], runs["model.d_model=128"]
+    assert narrow["tokens"] > wide["tokens"]
+    per_step = narrow["tokens_per_step"] * narrow["flops_per_token"]
+    assert abs(narrow["train_flops"] - wide["train_flops"]) <= per_step  # equal up to one step
+    grid = records.read_grid(tmp_path / "single")
+    config = (run_dirs(tmp_path)[0] / "config.yaml").read_text()
+    assert "flops: null" not in config and set(grid.budget_flops) == {"model.d_model=64", "model.d_model=128"}

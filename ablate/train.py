@@ -11,15 +11,39 @@ same command resumes an interrupted run and skips a finished one.
 
 from __future__ import annotations
 
+import json
 import os
 import sys
+import traceback
 from pathlib import Path
+
+import hydra
+from hydra.core.global_hydra import GlobalHydra
+from hydra.core.hydra_config import HydraConfig
+from hydra.types import RunMode
+from omegaconf import OmegaConf
 
 from . import records
 from .cells import Cell
 from .checks import one_line
 from .config import CONF_DIR
+from .factors import FactorError, factors_of
+from .grid import (
+    check_all,
+    check_cells,
+    check_fairness,
+    compose_checked,
+    expand_jobs,
+    find_baseline,
+    format_table,
+    output_folder,
+    price_budget,
+)
+from .rounds import more_rounds
+from .runner import Interrupted, RunInfo, run
 from .schema import ConfigError
+
+__all__ = ["main", "preflight", "exit_code", "EXIT_FAILED", "EXIT_CONFIG", "EXIT_BUSY", "EXIT_INTERRUPTED"]
 
 PASS_THROUGH = (
     "--help",
@@ -36,7 +60,40 @@ PASS_THROUGH = (
     "-sc",
     "--version",
 )
-EXIT_CONFIG = 2
+EXIT_FAILED = 1  # a run failed or diverged, or a file could not be written
+EXIT_CONFIG = 2  # a value the user must fix (also a damaged or foreign checkpoint)
+EXIT_BUSY = 2  # another process holds the run folder
+EXIT_INTERRUPTED = 130  # Ctrl-C or SIGTERM
+
+
+class Diverged(Exception):
+    """A single run ended with a non-finite loss or gradient (its summary says where)."""
+
+
+def exit_code(exc: BaseException) -> int:
+    """The one place an error becomes an exit code."""
+    for kinds, code in (
+        ((ConfigError, records.CheckpointError), EXIT_CONFIG),
+        ((records.FolderBusy,), EXIT_BUSY),
+        ((Interrupted, KeyboardInterrupt), EXIT_INTERRUPTED),
+        ((records.WriteError, Diverged), EXIT_FAILED),
+    ):
+        if isinstance(exc, kinds):
+            return code
+    raise exc  # not ours: let its traceback show
+
+
+def _stop(exc: BaseException) -> None:
+    """Print the error in one line on stderr and exit with its code."""
+    code = exit_code(exc)
+    if not isinstance(exc, Diverged):  # a divergence was reported when the run ended
+        words = (
+            "error: " if isinstance(exc, (ConfigError, records.CheckpointError, records.WriteError)) else ""
+        )
+        print(f"h2h-train: {words}{exc}", file=sys.stderr, flush=True)
+    sys.exit(code)
+
+
 # A single run's FLOPs budget when budget.match=flops leaves budget.flops null: priced by the
 # pre-flight (which composes the baseline's config) and read by the run in the same process.
 _SINGLE_RUN_FLOPS: float | None = None
@@ -56,18 +113,6 @@ def _split_argv(argv: list[str]) -> tuple[bool, list[str], list[str]]:
 
 def preflight(argv: list[str]) -> records.GridRecord | None:
     """Validate everything before anything trains. Returns the grid record for ``-m``."""
-    from omegaconf import OmegaConf
-
-    from .grid import (
-        check_cells,
-        check_fairness,
-        compose_checked,
-        expand_jobs,
-        find_baseline,
-        output_folder,
-        price_budget,
-    )
-
     multirun, design, hydra_side = _split_argv(argv)
     if not multirun:
         cfg = compose_checked(design)
@@ -111,10 +156,6 @@ def _seed_of(job: list[str], default: int) -> int:
 
 def grid_factors(grid, cells) -> list:
     """The factors of a grid whose recipe declares ``grid.factors`` (else none: a pairwise grid)."""
-    from omegaconf import OmegaConf
-
-    from .factors import FactorError, factors_of
-
     if grid.get("factors") is None:
         return []
     try:
@@ -134,12 +175,11 @@ def reference_cell(factors) -> str | None:
 
 
 def _check_free(run_dir: Path) -> None:
-    """Exit 2 in one line when another process holds the run folder (checked again, race-free,
+    """Raise FolderBusy when another process holds the run folder (checked again, race-free,
     when the run takes the folder's lock)."""
     holder = records.lock_holder(run_dir)
     if holder is not None:
-        print(f"h2h-train: {records.FolderBusy(run_dir, holder)}", file=sys.stderr, flush=True)
-        sys.exit(EXIT_CONFIG)
+        raise records.FolderBusy(run_dir, holder)
 
 
 # In a grid folder during a launch: one JSON line per cell skipped because another process held it.
@@ -148,19 +188,12 @@ ELSEWHERE = ".running_elsewhere.jsonl"
 
 def _note_running_elsewhere(grid_dir: Path, exc: records.FolderBusy) -> None:
     """Append (O_APPEND: one short line per write, safe from parallel jobs) for the epilogue."""
-    import json
-
     line = json.dumps({"run": exc.folder.name, **exc.holder}) + "\n"
     with open(grid_dir / ELSEWHERE, "a") as f:
         f.write(line)
 
 
 def _task_impl(cfg) -> records.RunSummary | None:
-    from hydra.core.hydra_config import HydraConfig
-    from hydra.types import RunMode
-
-    from .runner import RunInfo
-
     hc = HydraConfig.get()
     in_grid = hc.mode == RunMode.MULTIRUN
     run_dir = Path(hc.runtime.output_dir)
@@ -173,8 +206,6 @@ def _task_impl(cfg) -> records.RunSummary | None:
     slot = int(hc.job.num) % n_jobs if in_grid and n_jobs and n_jobs > 1 else None
     info = RunInfo(run_dir=run_dir, choices=choices, cell=str(cell), overrides=overrides, slot=slot)
 
-    from omegaconf import OmegaConf
-
     if cfg.budget.match == "flops" and cfg.budget.flops is None:  # priced by the pre-flight
         cfg.budget.flops = record.budget_flops.get(str(cell)) if record else _SINGLE_RUN_FLOPS
     fingerprint = records.config_fingerprint(OmegaConf.to_container(cfg, resolve=True))
@@ -183,72 +214,62 @@ def _task_impl(cfg) -> records.RunSummary | None:
         # the same config and seed give the same numbers, so running it again would repeat them
         print(f"skip {run_dir.name}: already {done.status} with the same config", flush=True)
         if done.status == "diverged" and not in_grid:
-            sys.exit(1)
+            raise Diverged(run_dir)
         return done
     try:
         with records.folder_lock(run_dir):
-            return _locked_run(cfg, info, run_dir, in_grid, n_jobs)
+            return _locked_run(cfg, info, in_grid, n_jobs)
     except records.FolderBusy as exc:
         if not in_grid:
-            print(f"h2h-train: {exc}", file=sys.stderr, flush=True)
-            sys.exit(EXIT_CONFIG)
+            raise
         print(f"skip {run_dir.name}: running elsewhere ({exc})", flush=True)
         _note_running_elsewhere(Path(os.path.abspath(hc.sweep.dir)), exc)
         return None  # no summary of this launch: the cell is listed in the grid's epilogue
 
 
-def _locked_run(cfg, info, run_dir: Path, in_grid: bool, n_jobs) -> records.RunSummary | None:
-    """One run, its failure path included, while this process holds the run folder's lock."""
-    from .grid import check_all
-    from .runner import Interrupted, run
+# What a single run stops on with one line and an exit code; in a grid the failure is recorded
+# and the other runs go on (anything else also prints its traceback).
+EXPECTED = (ConfigError, records.CheckpointError, records.WriteError)
 
+
+def _locked_run(cfg, info, in_grid: bool, n_jobs) -> records.RunSummary | None:
+    """One run, its failure path included, while this process holds the run folder's lock."""
     try:
         check_all(cfg)
         summary = run(cfg, info, parallel_jobs=n_jobs if in_grid else None)
-    except Interrupted as exc:
-        print(f"h2h-train: {exc}", file=sys.stderr, flush=True)
-        sys.exit(130)
-    except KeyboardInterrupt:  # Ctrl-C or SIGTERM outside the training loop (corpus build, probes)
-        print(
-            f"h2h-train: interrupted outside the training loop; {run_dir} keeps its last complete "
-            "checkpoint, if any. Run the same command again to resume.",
-            file=sys.stderr,
-            flush=True,
-        )
-        sys.exit(130)
-    except records.WriteError as exc:  # disk full or not writable: the folder keeps its previous files
-        print(f"h2h-train: error: {exc}", file=sys.stderr, flush=True)
-        if not in_grid:
-            sys.exit(1)
-        return records.RunSummary(
-            status="failed",
-            attention=info.choices.get("attention"),
-            cell=info.cell,
-            seed=int(cfg.seed),
-            error=str(exc),
-        )
-    except (ConfigError, records.CheckpointError) as exc:
-        if not in_grid:
-            with open(run_dir / "train.log", "a") as log:  # the folder keeps the reason
-                log.write(f"error: {exc}\n")
-            print(f"h2h-train: error: {exc}", file=sys.stderr, flush=True)
-            sys.exit(EXIT_CONFIG)
-        return _record_failure(run_dir, info, cfg, exc)
+    except (Interrupted, KeyboardInterrupt) as exc:  # stops the whole launch; the checkpoint is kept
+        if isinstance(exc, KeyboardInterrupt):
+            exc = Interrupted(
+                f"interrupted outside the training loop; {info.run_dir} keeps its last complete "
+                "checkpoint, if any. Run the same command again to resume."
+            )
+        _stop(exc)
     except Exception as exc:
-        _record_failure(run_dir, info, cfg, exc)
+        if not in_grid and isinstance(exc, EXPECTED):  # one line and an exit code, nothing written
+            if not isinstance(exc, records.WriteError):  # but the reason, when the disk takes it
+                _log_error(info.run_dir, exc)
+            raise
+        failed = _record_failure(info, cfg, exc)
         if not in_grid:
             raise
-        import traceback
-
-        traceback.print_exc()
-        return None
-    _report_run(summary, run_dir)
+        if not isinstance(exc, EXPECTED):
+            traceback.print_exc()
+        return failed
+    _report_run(summary, info.run_dir)
     if summary.status == "diverged" and not in_grid:
-        sys.exit(1)
+        raise Diverged(info.run_dir)
     return summary
 
 
-def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> records.RunSummary:
+def _log_error(run_dir: Path, exc: BaseException) -> None:
+    with open(run_dir / records.LOG, "a") as log:
+        log.write(f"error: {exc}\n")
+
+
+def _record_failure(info, cfg, exc: BaseException) -> records.RunSummary:
+    """The one failure summary: written to the run folder (an earlier non-failed summary is kept
+    under another name); when even that cannot be written, it is only returned."""
+    run_dir = info.run_dir
     summary = records.RunSummary(
         status="failed",
         attention=info.choices.get("attention"),
@@ -258,17 +279,19 @@ def _record_failure(run_dir: Path, info, cfg, exc: BaseException) -> records.Run
         overrides=info.overrides,
         error=one_line(f"{type(exc).__name__}: {exc}", 1000),
     )
-    earlier = records.read_summary(run_dir)
-    if earlier and earlier.status != "failed":
-        # e.g. a grid relaunched after its recipe changed: the earlier result stays, under another name
-        kept = run_dir / f"summary.{earlier.fingerprint or 'earlier'}.json"
-        (run_dir / records.SUMMARY).replace(kept)
-        print(
-            f"run {run_dir.name}: its earlier {earlier.status} summary was kept as {kept.name}",
-            file=sys.stderr,
-            flush=True,
-        )
-    records.write_summary(run_dir, summary)
+    try:
+        earlier = records.read_summary(run_dir)
+        if earlier and earlier.status != "failed":
+            # e.g. a grid relaunched after its recipe changed: the earlier result stays, under another name
+            kept = run_dir / f"summary.{earlier.fingerprint or 'earlier'}.json"
+            (run_dir / records.SUMMARY).replace(kept)
+            print(
+                f"run {run_dir.name}: its earlier {earlier.status} summary was kept as {kept.name}",
+                file=sys.stderr,
+            )
+        records.write_summary(run_dir, summary)
+    except (OSError, records.WriteError) as write_exc:
+        print(f"run {run_dir.name}: its failure could not be recorded ({write_exc})", file=sys.stderr)
     print(f"run {run_dir.name} failed: {summary.error}", file=sys.stderr, flush=True)
     return summary
 
@@ -298,11 +321,12 @@ def _report_run(s: records.RunSummary, run_dir: Path) -> None:
 
 
 def _hydra_app():
-    import hydra
-
     @hydra.main(config_path=str(CONF_DIR), config_name="config", version_base="1.3")
     def task(cfg):
-        return _task_impl(cfg)
+        try:
+            return _task_impl(cfg)
+        except (*EXPECTED, records.FolderBusy, Diverged) as exc:  # single runs (a grid goes on)
+            _stop(exc)
 
     return task
 
@@ -319,21 +343,17 @@ def main(argv: list[str] | None = None) -> None:
         _main(argv)
     except KeyboardInterrupt:
         print("h2h-train: interrupted before training started; nothing was written", file=sys.stderr)
-        sys.exit(130)
+        sys.exit(EXIT_INTERRUPTED)
+    except (ConfigError, records.FolderBusy) as exc:  # the pre-flight's: before anything trains
+        _stop(exc)
 
 
 def _main(argv: list[str] | None = None) -> None:
     argv = list(sys.argv[1:] if argv is None else argv)
     grid = None
     if not any(a in PASS_THROUGH or a.startswith(("--cfg", "--package")) for a in argv):
-        try:
-            grid = preflight(argv)
-        except ConfigError as exc:
-            print(f"h2h-train: error: {exc}", file=sys.stderr)
-            sys.exit(EXIT_CONFIG)
+        grid = preflight(argv)
         if grid is not None:
-            from .grid import format_table
-
             Path(grid.dir).mkdir(parents=True, exist_ok=True)
             (Path(grid.dir) / ELSEWHERE).unlink(missing_ok=True)  # notes of an earlier launch
             records.write_grid(grid)
@@ -343,8 +363,6 @@ def _main(argv: list[str] | None = None) -> None:
     launch = _launcher(grid.branches if grid is not None else [[]])
     launch(argv)
     if grid is not None:
-        from .rounds import more_rounds
-
         more_rounds(grid, argv, launch)
         _grid_epilogue(Path(grid.dir))
 
@@ -371,16 +389,12 @@ def _launch(argv: list[str]) -> None:
     """Hand the command line to Hydra. Its parser wants -m before the overrides; accept it anywhere."""
     multirun_flags = [a for a in argv if a in ("-m", "--multirun")]
     sys.argv = [sys.argv[0]] + multirun_flags + [a for a in argv if a not in multirun_flags]
-    from hydra.core.global_hydra import GlobalHydra
-
     GlobalHydra.instance().clear()  # a second seed round starts Hydra again in this process
     _hydra_app()()
 
 
 def _running_elsewhere(grid_dir: Path) -> list[dict]:
     """The cells this launch skipped because another process held them (noted by the jobs)."""
-    import json
-
     notes = grid_dir / ELSEWHERE
     if not notes.exists():
         return []

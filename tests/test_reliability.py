@@ -446,13 +446,16 @@ def test_a_failure_keeps_the_folders_earlier_result(tmp_path):
     earlier = {"status": "completed", "fingerprint": "abc123", "final_val_loss": 2.6}
     records.write_json(tmp_path / records.SUMMARY, earlier)
     info = SimpleNamespace(
-        choices={"attention": "standard"}, cell="attention=standard", overrides=["attention=standard"]
+        run_dir=tmp_path,
+        choices={"attention": "standard"},
+        cell="attention=standard",
+        overrides=["attention=standard"],
     )
     failed = _record_failure(
-        tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("written by another config")
+        info, SimpleNamespace(seed=0), records.CheckpointError("written by another config")
     )
     assert records.read_json(tmp_path / "summary.abc123.json") == earlier
     assert records.read_summary(tmp_path) == failed and failed.status == "failed"
     # a second failure replaces the first failure only: nothing else to keep
-    _record_failure(tmp_path, info, SimpleNamespace(seed=0), records.CheckpointError("again"))
+    _record_failure(info, SimpleNamespace(seed=0), records.CheckpointError("again"))
     assert sorted(p.name for p in tmp_path.iterdir()) == ["summary.abc123.json", "summary.json"]

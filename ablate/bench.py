@@ -32,10 +32,20 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
+from hydra.errors import HydraException
+from omegaconf.errors import OmegaConfBaseException
 
 from .compute import account
 from .config import CONF_DIR, build_model, compose
 from .optim import build_optimizer, training_step
+
+__all__ = [
+    "main",
+    "named_choices",
+    "paired_ratio",
+    "ratios_to",
+    "time_rounds",
+]
 
 COMPILE_MODES = ("none", "block", "model")
 MIB = 1024.0**2
@@ -428,9 +438,6 @@ def run(args) -> dict:
 
 
 def main(argv=None) -> int:
-    from hydra.errors import HydraException
-    from omegaconf.errors import OmegaConfBaseException
-
     args = parse_args(argv)
     try:
         result = run(args)

@@ -15,6 +15,7 @@ from dataclasses import asdict, dataclass
 
 import torch
 from torch import nn
+from torch.utils.flop_counter import FlopCounterMode
 
 
 @dataclass(frozen=True)
@@ -51,7 +52,6 @@ def attention_core_flops_per_token(block: nn.Module, seq_len: int) -> float:
     """
     if hasattr(block, "core_flops_per_token"):
         return float(block.core_flops_per_token(seq_len))
-    from torch.utils.flop_counter import FlopCounterMode
 
     x = torch.zeros(1, seq_len, block.d_model)
     with torch.no_grad(), FlopCounterMode(display=False) as counter:
@@ -71,7 +71,6 @@ def account(model: nn.Module, seq_len: int | None = None) -> Accounting:
 def measure_flops_per_token(model: nn.Module, seq_len: int | None = None, batch: int = 1) -> float:
     """Training FLOPs per token measured by ``torch.utils.flop_counter.FlopCounterMode`` on one
     forward + backward pass (the outside reference for :func:`account`)."""
-    from torch.utils.flop_counter import FlopCounterMode
 
     seq_len = seq_len or model.seq_len
     ids = torch.randint(0, model.vocab_size, (batch, seq_len + 1))

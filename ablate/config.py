@@ -4,7 +4,15 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from hydra import compose as hydra_compose
+from hydra import initialize_config_dir
+from hydra.core.global_hydra import GlobalHydra
+from hydra.core.singleton import Singleton
+from hydra.utils import instantiate
 from omegaconf import OmegaConf
+
+from .model import Decoder
+from .schema import register as _register_schema
 
 CONF_DIR = Path(__file__).resolve().parents[1] / "conf"
 
@@ -30,8 +38,6 @@ for _name, _fn in (
     if not OmegaConf.has_resolver(_name):
         OmegaConf.register_new_resolver(_name, _fn)
 
-from .schema import register as _register_schema  # noqa: E402
-
 _register_schema()
 
 
@@ -39,9 +45,6 @@ def compose(
     overrides: list[str] | None = None, config_name: str = "config", return_hydra_config: bool = False
 ):
     """The config ``h2h-train`` would see for these overrides (no run folder, no logging)."""
-    from hydra import compose as hydra_compose
-    from hydra import initialize_config_dir
-    from hydra.core.global_hydra import GlobalHydra
 
     GlobalHydra.instance().clear()
     with initialize_config_dir(config_dir=str(CONF_DIR), version_base="1.3"):
@@ -53,7 +56,6 @@ def compose(
 def compose_isolated(overrides: list[str]):
     """:func:`compose`, callable inside a running Hydra job: Hydra's global state (the job's own
     config search path and HydraConfig) is saved before and put back after."""
-    from hydra.core.singleton import Singleton
 
     saved = Singleton.get_state()
     try:
@@ -66,7 +68,6 @@ def compose_isolated(overrides: list[str]):
 
 def build_attention_factory(cfg):
     """``layer_index -> block`` built with ``hydra.utils.instantiate(cfg.attention, ...)``."""
-    from hydra.utils import instantiate
 
     n_layers = cfg.model.n_layers
 
@@ -79,8 +80,6 @@ def build_attention_factory(cfg):
 
 
 def build_model(cfg, vocab_size: int):
-    from .model import Decoder
-
     m = cfg.model
     return Decoder(
         vocab_size=vocab_size,

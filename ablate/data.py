@@ -14,12 +14,20 @@ fit its data. Two families:
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 import torch
 
+import toy_corpus
+from toy_corpus.drills import Drill, accuracy
+
+from . import curves
 from .checks import one_line
+from .probes import run_probes
 from .probes.common import evaluating
+from .probes.drill import DRILL_PROBES, drill_probes
+from .probes.suite import LOGBOOK_PROBES
 from .schema import ConfigError
 
 
@@ -75,8 +83,6 @@ class LogbookSource:
         return {"loss/val": loss}
 
     def probe(self, model, probes_cfg: dict, device) -> tuple[dict, dict]:
-        from .probes import run_probes
-
         return run_probes(model, self.corpus, probes_cfg, device=str(device))
 
     @property
@@ -106,14 +112,11 @@ class DrillSource:
         return torch.from_numpy(tokens).to(device), torch.from_numpy(mask).to(device)
 
     def evaluate(self, model) -> dict[str, float]:
-        from toy_corpus.drills import accuracy
-
         loss, predictions = evaluate_loss(model, self.val, self.val_mask, self.batch_size)
         acc = accuracy(predictions, self.val.cpu().numpy(), self.val_mask.cpu().numpy())
         return {"loss/val": loss, "drill/acc": acc, "drill/copy_level": float(self.drill.copy_level)}
 
     def probe(self, model, probes_cfg: dict, device) -> tuple[dict, dict]:
-        from .probes.drill import drill_probes
 
         return drill_probes(model, self.drill, probes_cfg, device=str(device)), {}
 
@@ -124,7 +127,6 @@ class DrillSource:
     def final_metrics(self, history: dict, budget_tokens: float) -> dict[str, float]:
         """Area under the held-out accuracy curve and tokens to the halfway and 0.9 levels; a level
         not reached within the budget is censored: ``*_reached`` is 0 and no tokens figure is given."""
-        from . import curves
 
         points = history.get("drill/acc", [])
         tokens = np.array([t for t, _ in points], dtype=float)
@@ -146,16 +148,11 @@ class DrillSource:
 def open_source(
     resolved: dict, seq_len: int, batch_size: int, seed: int, device
 ) -> LogbookSource | DrillSource:
-    """The data source of a resolved config (``resolved['data']`` names its family with ``kind``)."""
-    data = resolved["data"]
-    if data.get("kind", "logbook") == "logbook":
-        return _logbook(resolved, seq_len, batch_size, seed, device)
-    return _drill(resolved, seq_len, batch_size, seed, device)
+    """The data source of a resolved config (its family: :func:`family_of`)."""
+    return family_of(resolved["data"]).open(resolved, seq_len, batch_size, seed, device)
 
 
 def _logbook(resolved: dict, seq_len: int, batch_size: int, seed: int, device) -> LogbookSource:
-    import toy_corpus
-
     corpus = toy_corpus.get_corpus(resolved["data"], seq_len, resolved["runtime"]["cache_dir"])
     eval_windows = resolved["budget"]["eval_windows"]
     split = "training"
@@ -185,15 +182,56 @@ def _window_message(message: str, split: str, seq_len: int, eval_windows: int) -
 
 
 def _drill(resolved: dict, seq_len: int, batch_size: int, seed: int, device) -> DrillSource:
-    from toy_corpus.drills import Drill
-
     drill = Drill.from_dict(resolved["data"])
-    if drill.length - 1 > seq_len:
-        raise ConfigError(
-            f"model.seq_len={seq_len}: shorter than the {drill.cfg.kind} drill's sequences "
-            f"({drill.length - 1} inputs); allowed: model.seq_len >= {drill.length - 1}"
-        )
+    _check_drill_fits(drill, seq_len)
     tokens, mask = drill.held_out(int(resolved["budget"]["eval_windows"]))
     return DrillSource(
         drill, batch_size, torch.from_numpy(tokens).to(device), torch.from_numpy(mask).to(device)
     )
+
+
+def _check_drill_fits(drill: Drill, seq_len: int) -> None:
+    if drill.length - 1 > seq_len:
+        raise ConfigError(
+            f"model.seq_len={seq_len}: shorter than the {drill.cfg.kind} drill's sequences "
+            f"({drill.length - 1} inputs); allowed: model.seq_len >= {drill.length - 1}, or a shorter drill"
+        )
+
+
+def _check_drill(data: dict, seq_len: int) -> None:
+    _check_drill_fits(Drill.from_dict(data), seq_len)  # from_dict runs DrillConfig.check
+
+
+def _drill_shape(data: dict, seq_len: int) -> tuple[int, int]:
+    drill = Drill.from_dict(data)
+    return int(drill.vocab_size), int(drill.length - 1)
+
+
+@dataclass(frozen=True)
+class DataFamily:
+    """One family of training data: how its config group is checked (a ``ValueError`` or
+    ``ConfigError`` naming the key), what shape it gives the model without building it
+    (vocabulary size, tokens per sequence), how its source opens, and which probes run on it."""
+
+    name: str
+    check: Callable[[dict, int], None]
+    shape: Callable[[dict, int], tuple[int, int]]
+    open: Callable[..., object]
+    probes: tuple[str, ...]
+
+
+FAMILIES = {
+    "logbook": DataFamily(
+        "logbook",
+        toy_corpus.check_config,
+        lambda data, seq_len: (int(data["vocab_size"]), int(seq_len)),
+        _logbook,
+        LOGBOOK_PROBES,
+    ),
+    "drill": DataFamily("drill", _check_drill, _drill_shape, _drill, DRILL_PROBES),
+}
+
+
+def family_of(data: dict) -> DataFamily:
+    """The family of a data group: ``logbook`` (no ``kind``, or ``kind: logbook``), else a drill."""
+    return FAMILIES["logbook" if data.get("kind", "logbook") == "logbook" else "drill"]

@@ -53,6 +53,25 @@ import numpy as np
 from scipy import stats
 from scipy.optimize import OptimizeWarning, curve_fit
 
+__all__ = [
+    "AXIS_LABELS",
+    "AXIS_NOUNS",
+    "EfficiencyError",
+    "LOG_LINE",
+    "POWER_LAW",
+    "LossCurve",
+    "Comparison",
+    "check_pair",
+    "compare",
+    "fit_loss_curve",
+    "fit_power_law",
+    "fit_log_line",
+    "refit",
+    "size_ratio",
+    "bootstrap_ratio",
+    "geometric_middle",
+]
+
 POWER_LAW = "power law"
 LOG_LINE = "log-log line"
 ALPHA_BOUNDS = (1e-3, 5.0)

@@ -8,15 +8,44 @@ from __future__ import annotations
 
 import itertools
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
 import torch
+from hydra.core.hydra_config import HydraConfig
+from hydra.core.override_parser.overrides_parser import OverridesParser
+from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
+from .attention import check_block
 from .cells import Cell, level_text
 from .compute import account, ratios
+from .config import build_model, compose
+from .data import family_of
+from .probes import check_config
 from .schema import ConfigError, check_ranges
+
+__all__ = [
+    "GridCell",
+    "check_all",
+    "check_cells",
+    "check_data",
+    "check_fairness",
+    "check_probes_fit",
+    "compose_checked",
+    "expand_jobs",
+    "find_baseline",
+    "format_table",
+    "output_folder",
+    "price_budget",
+    "swept_keys",
+    "data_shape",
+    "accounting_of",
+    "hydra_message",
+    "nested_branches",
+    "sweep_jobs",
+]
 
 
 @dataclass
@@ -62,9 +91,6 @@ def expand_jobs(
     take part in the compose as they do in Hydra's, but are not job overrides. Also returns the
     launch branches: one per group of nested factors (see :func:`nested_branches`), ``[[]]``
     when there are none."""
-    from hydra.core.override_parser.overrides_parser import OverridesParser
-
-    from .config import compose
 
     parser = OverridesParser.create()
     try:
@@ -128,10 +154,6 @@ def output_folder(overrides: list[str], multirun: bool) -> Path:
     (Hydra's defaults list skips them), and a relative folder is taken from the current folder
     (Hydra's run_job takes ``os.path.abspath`` of it).
     """
-    from hydra.core.hydra_config import HydraConfig
-    from hydra.core.override_parser.overrides_parser import OverridesParser
-
-    from .config import compose
 
     try:
         parsed = OverridesParser.create().parse_overrides(overrides)
@@ -156,17 +178,11 @@ def _first_value(o) -> str:
 def data_shape(cfg) -> tuple[int, int]:
     """(vocabulary size, tokens per training sequence) of the config's data, without building it."""
     data = OmegaConf.to_container(cfg.data, resolve=True)
-    if data.get("kind", "logbook") == "logbook":
-        return int(data["vocab_size"]), int(cfg.model.seq_len)
-    from toy_corpus.drills import Drill
-
-    drill = Drill.from_dict(data)
-    return int(drill.vocab_size), int(drill.length - 1)
+    return family_of(data).shape(data, int(cfg.model.seq_len))
 
 
 def accounting_of(cfg):
     """Parameters and FLOPs per token of a config's model, on the meta device (no memory, no time)."""
-    from .config import build_model
 
     vocab_size, seq_len = data_shape(cfg)
     with torch.device("meta"):
@@ -222,8 +238,6 @@ def price_budget(cfg, overrides: list[str], baseline: str | None) -> float | Non
 
 
 def compose_checked(overrides: list[str]):
-    from .config import compose
-
     try:
         cfg = compose(overrides)
         OmegaConf.resolve(cfg)
@@ -237,14 +251,11 @@ def compose_checked(overrides: list[str]):
 
 def check_all(cfg) -> None:
     """Schema ranges, the data group's own checks, and building one attention block."""
-    from hydra.utils import instantiate
 
     check_ranges(cfg)
     check_data(cfg)
     if cfg.get("probes") is not None:
         check_probes_fit(cfg)
-
-    from .attention import check_block
 
     try:
         with torch.device("meta"):
@@ -269,52 +280,38 @@ def check_all(cfg) -> None:
 
 
 def check_data(cfg) -> None:
-    """The data group's own checks (logbook: ``toy_corpus.check_config``; drills:
-    ``DrillConfig.check``), and that its sequences fit ``model.seq_len``."""
+    """The data group's own checks, through its family (logbook: ``toy_corpus.check_config``;
+    drills: ``DrillConfig.check`` and that a sequence fits ``model.seq_len``)."""
     data = OmegaConf.to_container(cfg.data, resolve=True)
     try:
-        if data.get("kind", "logbook") == "logbook":
-            import toy_corpus
-
-            toy_corpus.check_config(data, cfg.model.seq_len)
-            return
-        _, length = data_shape(cfg)
+        family_of(data).check(data, int(cfg.model.seq_len))
+    except ConfigError:
+        raise
     except ValueError as exc:
         message = hydra_message(exc)
         raise ConfigError(
             message if str(exc).startswith(("data", "seq_len")) else f"data.{message}"
         ) from None
-    if length > cfg.model.seq_len:
-        raise ConfigError(
-            f"model.seq_len={cfg.model.seq_len}: shorter than the {data['kind']} drill's sequences "
-            f"({length} inputs); allowed: model.seq_len >= {length}, or a shorter drill"
-        )
 
 
 def check_probes_fit(cfg) -> None:
     """The probes group's own checks, and that each enabled probe runs on the chosen data family."""
-    from .probes import check_config
-    from .probes.drill import DRILL_PROBES
-    from .probes.suite import LOGBOOK_PROBES
-
     try:
         probes = check_config(OmegaConf.to_container(cfg.probes, resolve=True))
     except ValueError as exc:
         raise ConfigError(hydra_message(exc)) from None
-    drill = cfg.data.get("kind", "logbook") != "logbook"
-    allowed = DRILL_PROBES if drill else LOGBOOK_PROBES
-    wrong = [name for name in probes["enabled"] if name not in allowed]
+    family = family_of(OmegaConf.to_container(cfg.data, resolve=True))
+    wrong = [name for name in probes["enabled"] if name not in family.probes]
     if wrong:
-        family = f"drill data (data.kind={cfg.data.kind})" if drill else "the logbook corpus"
+        where = f"drill data (data.kind={cfg.data.kind})" if family.name == "drill" else "the logbook corpus"
         raise ConfigError(
-            f"probes.enabled: {wrong[0]!r} does not run on {family}; allowed: {', '.join(allowed)} "
-            f"(probes={'drill' if drill else 'default'} has the right set)"
+            f"probes.enabled: {wrong[0]!r} does not run on {where}; allowed: {', '.join(family.probes)} "
+            f"(probes={'drill' if family.name == 'drill' else 'default'} has the right set)"
         )
 
 
 def hydra_message(exc: BaseException) -> str:
     """Hydra's and OmegaConf's messages, squeezed to one readable line."""
-    import re
 
     text = str(exc).strip()
     lines = [ln.strip() for ln in text.splitlines() if ln.strip()]

@@ -25,7 +25,7 @@ from typing import Callable
 import torch
 from torch import nn
 
-from .checks import positive_int
+from .checks import check_positive_int
 from .loss import head_loss
 from .norm import RMSNorm
 
@@ -105,7 +105,7 @@ class Decoder(nn.Module):
             ("n_layers", n_layers),
             ("seq_len", seq_len),
         ):
-            positive_int(name, value)
+            check_positive_int(name, value)
         self.vocab_size, self.d_model, self.n_layers, self.seq_len = vocab_size, d_model, n_layers, seq_len
         self.ffn_hidden = ffn_hidden or swiglu_hidden(d_model)
         self.tie_embeddings = tie_embeddings

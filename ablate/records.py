@@ -15,6 +15,7 @@ import datetime
 import errno
 import fcntl
 import hashlib
+import io
 import json
 import os
 import pickle
@@ -32,6 +33,36 @@ import ablate
 
 from .checks import one_line
 
+__all__ = [
+    "RunSummary",
+    "GridRecord",
+    "CheckpointError",
+    "FolderBusy",
+    "WriteError",
+    "CHECKPOINT",
+    "CONFIG",
+    "GRID",
+    "LOG",
+    "SUMMARY",
+    "LOCK",
+    "atomic_write_bytes",
+    "config_fingerprint",
+    "environment",
+    "folder_lock",
+    "load_checkpoint",
+    "lock_holder",
+    "read_grid",
+    "read_json",
+    "read_summary",
+    "remove_stale_temp_files",
+    "save_checkpoint",
+    "write_grid",
+    "write_json",
+    "write_summary",
+    "git_commit",
+    "git_dirty",
+]
+
 CHECKPOINT = "checkpoint.pt"
 SUMMARY = "summary.json"
 GRID = "grid.json"
@@ -39,7 +70,6 @@ CONFIG = "config.yaml"
 LOG = "train.log"
 LOCK = ".lock"
 TEMP_SUFFIX = ".partial"
-STATUSES = ("running", "completed", "failed", "diverged", "stopped")
 
 
 @dataclass
@@ -47,9 +77,11 @@ class RunSummary:
     """``summary.json``: what one run did and how it ended.
 
     ``status`` is ``completed``, ``failed``, ``diverged`` or ``stopped`` (stopped early on request,
-    never written to disk). ``probes`` is a flat ``name -> number`` dict. Fields a run did not reach
-    stay ``None`` (a failed run has no losses). Unknown keys of an older or hand-written file are
-    kept in ``extra`` and written back unchanged.
+    never written to disk). ``probes`` is a flat ``name -> number`` dict of the probes' results;
+    ``curve_metrics`` holds what the run computes from its own evaluation curve (a drill's
+    ``drill/auc``, final ``drill/acc``, ``drill/tokens_to_*`` and ``drill/*_reached``). Fields a
+    run did not reach stay ``None`` (a failed run has no losses). Unknown keys of an older or
+    hand-written file are kept in ``extra`` and written back unchanged.
     """
 
     status: str
@@ -75,6 +107,7 @@ class RunSummary:
     fingerprint: str | None = None
     environment: dict = field(default_factory=dict)
     probes: dict = field(default_factory=dict)
+    curve_metrics: dict = field(default_factory=dict)
     error: str | None = None
     diverged_at_step: int | None = None
     diverged_at_tokens: int | None = None
@@ -362,8 +395,11 @@ def read_json(path: Path) -> dict | None:
 
 
 def config_fingerprint(resolved: dict) -> str:
-    """Hash of the parts of a resolved config that decide a run's numbers (runtime settings
-    such as progress bars, threads and the early-stop switch excluded)."""
+    """Hash of the resolved config without the ``runtime`` group, ``run_root`` and ``grid``: the
+    experiment, not where or how fast it runs. The runtime group is left out on purpose (threads,
+    progress, the early-stop switch, but also the device and the kernels, which change float
+    rounding, not the experiment), so a run resumed on another device or with the other kernels
+    continues from its checkpoint; ``summary.json`` records the device it ran on."""
     keep = {k: v for k, v in resolved.items() if k not in ("runtime", "run_root", "grid")}
     return hashlib.sha256(json.dumps(keep, sort_keys=True, default=str).encode()).hexdigest()[:16]
 
@@ -371,7 +407,6 @@ def config_fingerprint(resolved: dict) -> str:
 def save_checkpoint(path: Path, state: dict) -> None:
     """Serialise in memory, then :func:`atomic_write_bytes`: a full disk raises
     :class:`WriteError` and leaves the previous checkpoint whole."""
-    import io
 
     buffer = io.BytesIO()
     try:

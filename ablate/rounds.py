@@ -23,6 +23,8 @@ import math
 from pathlib import Path
 
 from . import records
+from .report.load import ReportError, load_grid
+from .report.table import build
 from .stats import two_stage_total
 
 
@@ -35,8 +37,6 @@ def with_seeds(argv: list[str], seeds: list[int]) -> list[str]:
 def first_stage_verdicts(grid: records.GridRecord) -> list:
     """The primary comparisons of the grid folder as the report computes them (one function for
     both): the factorial effects on the primary metric, else each cell against its reference."""
-    from .report.load import load_grid
-    from .report.table import build
 
     report = build(load_grid(Path(grid.dir)), resamples=1)
     return report.effect_verdicts if report.factors else report.verdicts
@@ -74,7 +74,6 @@ def more_rounds(grid: records.GridRecord, argv: list[str], launch) -> None:
     """After the first round: fix the total number of seeds and launch the missing ones once."""
     if not grid.max_seeds:
         return
-    from .report.load import ReportError
 
     grid.first_stage = list(grid.seeds)
     records.write_grid(grid)

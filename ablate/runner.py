@@ -13,6 +13,7 @@ from Hydra (the config-group choices and the grid cell).
 from __future__ import annotations
 
 import math
+import os
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,15 +21,30 @@ from pathlib import Path
 import numpy as np
 import torch
 from omegaconf import OmegaConf
+from tqdm import tqdm
 
 from . import records
 from .attention.common import use_kernels
 from .cells import level_text
 from .checks import one_line
 from .compute import account, steps_from_budget
+from .config import build_model
+from .data import open_source
 from .optim import build_optimizer, lr_at, training_step
 from .runlog import RunLog
+from .schema import ConfigError
 from .signals import StopSignals
+
+__all__ = [
+    "run",
+    "RunInfo",
+    "Interrupted",
+    "RunState",
+    "check_fits",
+    "factor_levels",
+    "hparams_of",
+    "progress_label",
+]
 
 
 class Interrupted(Exception):
@@ -105,8 +121,6 @@ class RunState:
 def set_threads(runtime: dict, parallel_jobs: int | None) -> None:
     threads = runtime.get("threads")
     if threads is None and parallel_jobs:
-        import os
-
         threads = max(1, (os.cpu_count() or 1) // parallel_jobs)
     if threads:
         torch.set_num_threads(int(threads))
@@ -114,8 +128,6 @@ def set_threads(runtime: dict, parallel_jobs: int | None) -> None:
 
 def resolve_device(name: str) -> torch.device:
     if name.startswith("cuda") and not torch.cuda.is_available():
-        from .schema import ConfigError
-
         raise ConfigError(
             f"runtime.device={name!r}: CUDA is not available on this machine; use runtime.device=cpu"
         )
@@ -185,8 +197,6 @@ def plan_steps(resolved: dict, flops_per_token: float, tokens_per_step: int) -> 
     prices in the pre-flight when the config leaves it null)."""
     budget = resolved["budget"]
     if budget["match"] == "flops" and budget["flops"] is None:
-        from .schema import ConfigError
-
         raise ConfigError("budget.flops: null with budget.match=flops; h2h-train prices it before a run")
     return steps_from_budget(
         budget["match"], tokens_per_step, flops_per_token, budget["tokens"], budget["flops"]
@@ -196,8 +206,6 @@ def plan_steps(resolved: dict, flops_per_token: float, tokens_per_step: int) -> 
 def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, dict | None]:
     """Everything before the first step. Reads (and refuses) an existing checkpoint before anything
     in the folder is rewritten; returns the state and the checkpoint to resume from, if any."""
-    from .config import build_model
-    from .data import open_source
 
     resolved = OmegaConf.to_container(cfg, resolve=True)
     device = resolve_device(resolved["runtime"]["device"])
@@ -302,7 +310,7 @@ def resume(state: RunState, saved: dict) -> None:
     state.step, state.last_val, state.last_finite = (
         int(saved["step"]),
         saved.get("last_val"),
-        saved.get("last_train"),
+        saved.get("last_finite_train", saved.get("last_train")),  # the older key name too
     )
     state.history = saved.get("history") or {}
     state.log.line("resume", step=state.step, tokens=state.tokens)
@@ -318,7 +326,7 @@ def save(state: RunState) -> None:
             "fingerprint": state.summary.fingerprint,
             "step": state.step,
             "last_val": state.last_val,
-            "last_train": state.last_finite,
+            "last_finite_train": state.last_finite,
             "history": state.history,
             "model": state.model.state_dict(),
             "optimizer": state.optimizer.state_dict(),
@@ -400,7 +408,7 @@ def run_probes(state: RunState, probes_cfg: dict | None) -> dict:
     for name, value in numbers.items():
         state.writer.add_scalar(f"probe/{name}", value, state.tokens)
     if images:
-        from PIL import Image
+        from PIL import Image  # here, not at the top: only probes that return pictures need it
 
         folder = state.run_dir / "probes"
         folder.mkdir(exist_ok=True)
@@ -474,7 +482,7 @@ def finish(state: RunState, status: str) -> records.RunSummary:
         for name, value in state.source.final_metrics(
             state.history, state.total_steps * state.tokens_per_step
         ).items():
-            s.probes[name] = value
+            s.curve_metrics[name] = value
             state.writer.add_scalar(f"final/{name}", value, state.tokens)
         state.writer.add_scalar("final/val_loss", state.last_val, state.tokens)
         state.writer.add_scalar("final/train_loss", state.last_finite, state.tokens)
@@ -498,6 +506,8 @@ def open_writer(state: RunState):
     """TensorBoard writer for the run folder. Everything up to a checkpoint's step was flushed
     before the checkpoint was written, so on resume TensorBoard is told to drop only what an earlier
     attempt logged after it (``purge_step``) and the curve has no duplicated steps."""
+    # here, not at the top: torch.utils.tensorboard imports tensorboard (a second or so), which
+    # the pre-flight and the report's other paths never need
     from torch.utils.tensorboard import SummaryWriter
     from torch.utils.tensorboard.summary import hparams
 
@@ -523,8 +533,6 @@ def progress_label(cell: str, seed: int, limit: int = 40) -> str:
 
 
 def progress_bar(state: RunState):
-    from tqdm import tqdm
-
     return tqdm(
         total=state.total_steps * state.tokens_per_step,
         initial=state.tokens,
@@ -542,7 +550,8 @@ def run(cfg, info: RunInfo, parallel_jobs: int | None = None) -> records.RunSumm
     """Train one run to its budget (resuming if a checkpoint exists). Returns the summary.
 
     Raises :class:`Interrupted` after writing a checkpoint when SIGINT or SIGTERM arrives during
-    training, and ``records.CheckpointError`` (before touching the run folder) when the folder's
+    training, and ``records.CheckpointError`` (before any file of the folder is rewritten; stale
+    temporary files of a killed writer are cleared first) when the folder's
     checkpoint is damaged or belongs to another config. The TensorBoard writer is closed (flushed)
     on every way out: the event files of a diverged, failed or interrupted run are kept whole.
     """

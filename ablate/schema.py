@@ -17,7 +17,8 @@ from toy_corpus.config import LogbookSchema
 from toy_corpus.drills import DrillConfig
 
 from .attention.common import KERNELS
-from .checks import positive_int, positive_number
+from .checks import check_positive_int, check_positive_number
+from .probes.suite import ProbesSchema
 
 
 class ConfigError(ValueError):
@@ -86,21 +87,6 @@ class GridSchema:
 
 
 @dataclass
-class ProbesSchema:
-    """The probes group (ranges and probe names are checked by ``ablate.probes.check_config``)."""
-
-    enabled: List[str] = field(default_factory=list)
-    images: bool = True
-    n_images: int = 2
-    image_layers: int = 2
-    val_windows: int = 8
-    position_buckets: int = 8
-    max_items: Optional[int] = None
-    batch_tokens: int = 8192
-    every_tokens: Optional[float] = None
-
-
-@dataclass
 class RunSchema:
     model: ModelSchema = field(default_factory=ModelSchema)
     attention: Any = None
@@ -121,16 +107,9 @@ def register() -> None:
     ``logbook_schema``, defined beside its range checks in ``toy_corpus/config.py``)."""
     store = ConfigStore.instance()
     store.store(name="run_schema", node=RunSchema)
-    store.store(group="probes", name="probes_schema", node=ProbesSchema)
+    store.store(group="probes", name="probes_schema", node=ProbesSchema)  # ablate/probes/suite.py
     store.store(group="data", name="logbook_schema", node=LogbookSchema)
     store.store(group="data", name="drill_schema", node=DrillConfig)
-
-
-def _positive(key: str, value, kind=(int, float)) -> None:
-    if kind is int:
-        positive_int(key, value, error=ConfigError)
-    else:
-        positive_number(key, value, error=ConfigError)
 
 
 def check_ranges(cfg) -> None:
@@ -139,12 +118,12 @@ def check_ranges(cfg) -> None:
     if cfg.seed < 0:
         raise ConfigError(f"seed={cfg.seed!r}: must be an integer >= 0")
     for key in ("d_model", "n_layers", "head_dim", "seq_len"):
-        _positive(f"model.{key}", m[key], int)
+        check_positive_int(f"model.{key}", m[key], error=ConfigError)
     if m.ffn_hidden is not None:
-        _positive("model.ffn_hidden", m.ffn_hidden, int)
+        check_positive_int("model.ffn_hidden", m.ffn_hidden, error=ConfigError)
     if o.name != "adamw":
         raise ConfigError(f"optim.name={o.name!r}: allowed: adamw")
-    _positive("optim.lr", o.lr)
+    check_positive_number("optim.lr", o.lr, error=ConfigError)
     if not 0.0 <= o.warmup_fraction < 1.0:
         raise ConfigError(f"optim.warmup_fraction={o.warmup_fraction!r}: must be in [0, 1)")
     if o.weight_decay < 0:
@@ -154,22 +133,22 @@ def check_ranges(cfg) -> None:
     if b.match not in ("tokens", "flops"):
         raise ConfigError(f"budget.match={b.match!r}: allowed: tokens, flops")
     if b.match == "tokens" or b.flops is None:
-        _positive("budget.tokens", b.tokens)
+        check_positive_number("budget.tokens", b.tokens, error=ConfigError)
     if b.match == "flops" and b.flops is not None:
-        _positive("budget.flops", b.flops)
-    _positive("budget.batch_size", b.batch_size, int)
-    _positive("budget.eval_every_tokens", b.eval_every_tokens)
-    _positive("budget.eval_windows", b.eval_windows, int)
-    _positive("budget.checkpoint_every_tokens", b.checkpoint_every_tokens)
-    _positive("budget.log_every_steps", b.log_every_steps, int)
+        check_positive_number("budget.flops", b.flops, error=ConfigError)
+    check_positive_int("budget.batch_size", b.batch_size, error=ConfigError)
+    check_positive_number("budget.eval_every_tokens", b.eval_every_tokens, error=ConfigError)
+    check_positive_int("budget.eval_windows", b.eval_windows, error=ConfigError)
+    check_positive_number("budget.checkpoint_every_tokens", b.checkpoint_every_tokens, error=ConfigError)
+    check_positive_int("budget.log_every_steps", b.log_every_steps, error=ConfigError)
     if r.device not in ("cpu", "cuda") and not str(r.device).startswith("cuda:"):
         raise ConfigError(f"runtime.device={r.device!r}: allowed: cpu, cuda, cuda:<index>")
     if r.threads is not None:
-        _positive("runtime.threads", r.threads, int)
+        check_positive_int("runtime.threads", r.threads, error=ConfigError)
     if r.kernels not in KERNELS:
         raise ConfigError(f"runtime.kernels={r.kernels!r}: allowed: {', '.join(KERNELS)}")
     if r.stop_after_steps is not None:
-        _positive("runtime.stop_after_steps", r.stop_after_steps, int)
+        check_positive_int("runtime.stop_after_steps", r.stop_after_steps, error=ConfigError)
     if cfg.attention is None:
         raise ConfigError("attention: no attention block chosen; pick one with attention=<name>")
     if "_target_" not in cfg.attention:
@@ -180,6 +159,6 @@ def check_ranges(cfg) -> None:
 def check_grid(grid) -> None:
     if not 0.0 <= grid.tolerance < 1.0:
         raise ConfigError(f"grid.tolerance={grid.tolerance!r}: must be in [0, 1)")
-    _positive("grid.resolution", grid.resolution)
+    check_positive_number("grid.resolution", grid.resolution, error=ConfigError)
     if grid.max_seeds is not None:
-        _positive("grid.max_seeds", grid.max_seeds, int)
+        check_positive_int("grid.max_seeds", grid.max_seeds, error=ConfigError)

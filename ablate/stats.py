@@ -19,6 +19,22 @@ import math
 import numpy as np
 from scipy import stats
 
+__all__ = [
+    "mean_ci",
+    "mean_test",
+    "paired_difference",
+    "seeds_needed",
+    "seeds_needed_range",
+    "sd_interval",
+    "holm",
+    "two_stage_total",
+    "two_stage_interval",
+    "paired_binary_test",
+    "censored_sign_test",
+    "kaplan_meier",
+    "km_median",
+]
+
 
 def _sample(values) -> np.ndarray:
     arr = np.asarray(values, dtype=float).ravel()

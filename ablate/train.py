@@ -298,7 +298,8 @@ def _record_failure(info, cfg, exc: BaseException) -> records.RunSummary:
 
 def _report_run(s: records.RunSummary, run_dir: Path) -> None:
     if s.status == "completed":
-        drill = f", held-out accuracy {s.probes['drill/acc']:.3f}" if "drill/acc" in s.probes else ""
+        acc = s.curve_metrics.get("drill/acc")
+        drill = f", held-out accuracy {acc:.3f}" if acc is not None else ""
         print(
             f"done {s.cell} seed {s.seed}: val loss {s.final_val_loss:.4f}{drill} after {s.tokens:,} tokens "
             f"in {s.wall_seconds:.0f} s -> {run_dir}",

@@ -48,7 +48,7 @@ def reference_differential(block: DifferentialAttention, x: torch.Tensor) -> tor
         a1 = torch.softmax(s1.masked_fill(future, -math.inf), -1)
         a2 = torch.softmax(s2.masked_fill(future, -math.inf), -1)
         o = (a1 - lam * a2) @ v[:, i]
-        if block.use_head_norm:
+        if block.head_norm is not None:
             o = o / torch.sqrt(o.pow(2).mean(-1, keepdim=True) + 1e-5) * (1 - block.lambda_init)
         heads.append(o)
     return torch.cat(heads, -1) @ block.out_proj.weight.T
@@ -208,7 +208,7 @@ def naive_full_window_differential(block: DifferentialAttention, x: torch.Tensor
     b, t, _ = x.shape
     v = block._values(x)
     o = block.attention_weights(x) @ v
-    if block.use_head_norm:
+    if block.head_norm is not None:
         o = o / torch.sqrt(o.pow(2).mean(-1, keepdim=True) + 1e-5) * (1 - block.lambda_init)
     return block.out_proj(o.transpose(1, 2).reshape(b, t, -1))
 

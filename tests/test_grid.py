@@ -154,7 +154,7 @@ def test_factorial_grid_effects_equal_a_hand_computation_from_the_summaries(tmp_
     out = report(grid_dir)
     assert out.returncode == 0, out.stderr[-2000:]
     first = out.stdout.splitlines()[:4]
-    assert first[0].startswith("head_norm: final_val_loss (lower is better): factorial")
+    assert first[0].startswith("head_norm: final validation loss (lower is better): 2x2 factorial")
     rows = {r["cell"]: r for r in csv.DictReader((grid_dir / "summary.csv").open()) if r["kind"] == "effect"}
     # Hand computation per seed (Box, Hunter & Hunter 2005, ch. 5: effects as contrasts; the
     # interaction as the difference of the two simple effects), then a t interval across seeds.

@@ -28,7 +28,7 @@ def test_choice_options_reach_the_block():
         ["attention=differential", "attention.head_norm=false", "attention.lambda_init=0.5", "~data"]
     )
     block = instantiate(cfg.attention, d_model=128, layer_index=3, n_layers=4)
-    assert block.use_head_norm is False and block.lambda_init == 0.5
+    assert block.head_norm is None and block.lambda_init == 0.5
     wide = instantiate(
         compose(["attention=standard_wide_heads", "~data"]).attention, d_model=128, layer_index=0, n_layers=4
     )

@@ -14,6 +14,8 @@ import functools
 import random
 from dataclasses import dataclass, field
 
+from wordfreq import zipf_frequency
+
 # Languages whose words and names the invented names must avoid, and the frequency (Zipf scale:
 # log10 of occurrences per billion words) from which a word counts as in use. 1.0 is the floor of
 # wordfreq's large lists (about once in 100 million words): any word they list is rejected.
@@ -186,7 +188,6 @@ REPORT_FEATURES = [
 @functools.lru_cache(maxsize=None)
 def is_common_word(name: str) -> bool:
     """True when ``name`` is a word or name in use in one of :data:`NAME_LANGUAGES`."""
-    from wordfreq import zipf_frequency
 
     return any(zipf_frequency(name, lang, wordlist="large") >= COMMON_ZIPF for lang in NAME_LANGUAGES)
 

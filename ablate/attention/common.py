@@ -8,6 +8,21 @@ import contextvars
 
 import torch
 
+__all__ = [
+    "KERNELS",
+    "use_kernels",
+    "reference_kernels",
+    "CausalAttention",
+    "causal_chunks",
+    "causal_mask",
+    "causal_softmax",
+    "future_bias",
+    "range_probabilities",
+    "key_grad_buffers",
+    "add_into",
+    "add_score_grads",
+]
+
 KERNELS = ("fast", "reference")
 _KERNELS = contextvars.ContextVar("kernels", default="fast")
 
@@ -34,16 +49,6 @@ def use_kernels(name: str):
 def reference_kernels() -> bool:
     """True inside ``use_kernels("reference")``."""
     return _KERNELS.get() == "reference"
-
-
-def require_divisible(name: str, value: int, divisor: int, what: str) -> None:
-    if not isinstance(value, int) or value <= 0 or value % divisor:
-        raise ValueError(f"{name}={value} must be a positive multiple of {divisor} ({what})")
-
-
-def require_bool(name: str, value) -> None:
-    if not isinstance(value, bool):
-        raise ValueError(f"{name}={value!r} must be true or false")
 
 
 def causal_mask(time: int, device=None) -> torch.Tensor:

@@ -7,7 +7,7 @@ import math
 import torch
 from torch import nn
 
-from ..checks import positive_int
+from ..checks import check_bool, check_multiple, check_positive_int
 from ..norm import RMSNorm
 from .base import ProjectedAttention
 from .common import (
@@ -19,8 +19,6 @@ from .common import (
     key_grad_buffers,
     range_probabilities,
     reference_kernels,
-    require_bool,
-    require_divisible,
 )
 
 LAMBDA_MODES = ("learned", "fixed")
@@ -93,9 +91,9 @@ class DifferentialAttention(ProjectedAttention):
         lambda_std: float = 0.1,
         rope_base: float = 10000.0,
     ):
-        positive_int("head_dim", head_dim)
-        require_bool("head_norm", head_norm)
-        require_divisible("d_model", d_model, 2 * head_dim, f"2 * head_dim = {2 * head_dim}")
+        check_positive_int("head_dim", head_dim)
+        check_bool("head_norm", head_norm)
+        check_multiple("d_model", d_model, 2 * head_dim, f"2 * head_dim = {2 * head_dim}")
         if lambda_mode not in LAMBDA_MODES:
             raise ValueError(f"lambda_mode={lambda_mode!r} must be one of {', '.join(LAMBDA_MODES)}")
         super().__init__(d_model, head_dim, rope_base, layer_index, n_layers)
@@ -103,7 +101,6 @@ class DifferentialAttention(ProjectedAttention):
         self.lambda_mode = lambda_mode
         self.lambda_init = resolve_lambda_init(lambda_init, layer_index)
         self.lambda_std = lambda_std
-        self.use_head_norm = bool(head_norm)
         self.head_norm = RMSNorm(2 * head_dim, eps=1e-5, elementwise_affine=False) if head_norm else None
         if lambda_mode == "learned":
             self.lambda_q1 = nn.Parameter(torch.randn(head_dim) * lambda_std)

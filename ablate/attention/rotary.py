@@ -28,10 +28,10 @@ class Rotary(nn.Module):
         self._cache_key, self._cache = None, ()
 
     def angles(self, time: int, device=None) -> tuple[torch.Tensor, torch.Tensor]:
-        """``cos, sin`` of the angles, ``[time, head_dim]`` (each half repeats the other)."""
+        """``cos, sin`` of the angles ``m * theta_i``, ``[time, head_dim / 2]`` (channel pairs
+        ``(i, i + head_dim / 2)`` share an angle)."""
         pos = torch.arange(time, device=device or self.inv_freq.device, dtype=torch.float32)
         freqs = torch.outer(pos, self.inv_freq.to(pos.device))
-        freqs = torch.cat([freqs, freqs], dim=-1)
         return freqs.cos(), freqs.sin()
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
@@ -40,8 +40,7 @@ class Rotary(nn.Module):
         key = (x.shape[-2], x.dtype, x.device)
         if self._cache_key != key:
             cos, sin = self.angles(x.shape[-2], x.device)
-            half = x.shape[-1] // 2
-            self._cache = (cos[:, :half].to(x.dtype).contiguous(), sin[:, :half].to(x.dtype).contiguous())
+            self._cache = (cos.to(x.dtype), sin.to(x.dtype))
             self._cache_key = key
         return RotaryFunction.apply(x, *self._cache)
 

@@ -7,7 +7,7 @@ import math
 import torch
 from torch import nn
 
-from ..checks import positive_int
+from ..checks import check_bool, check_multiple, check_positive_int
 from ..norm import RMSNorm
 from .base import ProjectedAttention
 from .common import (
@@ -15,8 +15,6 @@ from .common import (
     causal_chunks,
     causal_softmax,
     reference_kernels,
-    require_bool,
-    require_divisible,
 )
 
 
@@ -56,9 +54,9 @@ class StandardAttention(ProjectedAttention):
         head_norm: bool = False,
         rope_base: float = 10000.0,
     ):
-        positive_int("head_dim", head_dim)
-        require_bool("head_norm", head_norm)
-        require_divisible("d_model", d_model, head_dim, f"head_dim={head_dim}")
+        check_positive_int("head_dim", head_dim)
+        check_bool("head_norm", head_norm)
+        check_multiple("d_model", d_model, head_dim, f"head_dim={head_dim}")
         super().__init__(d_model, head_dim, rope_base, layer_index, n_layers)
         self.n_heads = d_model // head_dim
         self.head_norm = RMSNorm(head_dim, eps=1e-5, elementwise_affine=False) if head_norm else nn.Identity()

@@ -15,6 +15,8 @@ import numpy as np
 import torch
 from torch import nn
 
+from toy_corpus.batches import validation_windows as corpus_windows
+
 DEFAULT_BATCH_TOKENS = 8192
 
 
@@ -150,7 +152,6 @@ def capture_block_outputs(model: nn.Module):
 def validation_windows(val_ids: np.ndarray, seq_len: int, n_windows: int) -> np.ndarray:
     """Fixed validation windows ``int64 [n, seq_len + 1]``, chosen by the corpus package (the same
     windows the trainer's validation loss reads)."""
-    from toy_corpus.batches import validation_windows as corpus_windows
 
     return corpus_windows(np.asarray(val_ids), seq_len, n_windows)
 

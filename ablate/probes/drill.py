@@ -19,14 +19,19 @@ The four are in [0, 1] and sum to 1; means over all answers of all items, keys
 
 from __future__ import annotations
 
+import time
 from typing import Sequence
 
 import numpy as np
 import torch
 from torch import nn
 
+from toy_corpus.drills import accuracy
+
 from .common import attention_modules, capture_attention_inputs, evaluating
+from .outliers import outlier_probe
 from .scan import bounded_rows
+from .suite import check_config
 
 SHARES = ("pair", "lookalike", "filler", "other")
 BATCH = 256
@@ -34,7 +39,6 @@ BATCH = 256
 
 def drill_accuracy(model: nn.Module, drill, n_items: int, device="cpu") -> float:
     """Held-out answer accuracy over ``n_items`` sequences (batched, eval mode, no grad)."""
-    from toy_corpus.drills import accuracy
 
     tokens, mask = drill.held_out(n_items)
     inputs = torch.as_tensor(tokens[:, :-1])
@@ -120,10 +124,6 @@ def drill_probes(model: nn.Module, drill, probes_cfg: dict, device="cpu") -> dic
     """The enabled drill probes (``DRILL_PROBES``) on held-out drill sequences, each timed as
     ``probe_seconds/<name>``: attention shares on ``probes.max_items`` items (256 when null) and the
     outlier probe on ``probes.val_windows`` sequences."""
-    import time
-
-    from .outliers import outlier_probe
-    from .suite import check_config
 
     cfg = check_config(probes_cfg)
     numbers: dict[str, float] = {}

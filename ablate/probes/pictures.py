@@ -48,7 +48,7 @@ def head_rows(model: nn.Module, item: dict, layers: int, device) -> tuple[list[i
 
 
 def draw(item: dict, layer_ids: Sequence[int], rows: Sequence[np.ndarray], title: str) -> np.ndarray:
-    import matplotlib
+    import matplotlib  # here, not at the top: only runs that draw pictures pay for matplotlib
 
     matplotlib.use("Agg", force=False)
     from matplotlib.backends.backend_agg import FigureCanvasAgg

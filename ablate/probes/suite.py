@@ -1,15 +1,7 @@
 """``run_probes``: every enabled probe on one model, timed, as flat numbers and images.
 
-``probes_cfg`` keys (``conf/probes/default.yaml`` holds the defaults):
-
-- ``enabled``: list drawn from ``retrieval``, ``attention``, ``outliers``, ``classification``,
-  ``quantization``, ``position``;
-- ``images`` (bool), ``n_images``, ``image_layers``: the retrieval attention pictures;
-- ``val_windows``: validation windows for ``outliers``, ``quantization`` and ``position``;
-- ``position_buckets``: position ranges of the ``position`` probe;
-- ``max_items``: cap on items per probe set (evenly spaced), or null for all;
-- ``batch_tokens``: padded tokens per forward pass;
-- ``every_tokens``: periodic probing, read by the trainer (ignored here).
+``probes_cfg`` keys and their defaults: :class:`ProbesSchema` (the probes group's schema, registered
+in Hydra's ConfigStore; its rules are :func:`check_config`, beside it).
 
 Each probe's wall time is reported as ``probe_seconds/<name>`` (``probe_seconds/images`` for the
 pictures, ``probe_seconds/total`` for everything). When both ``retrieval`` and ``attention`` are
@@ -20,12 +12,13 @@ enabled they share one forward sweep over the retrieval items: its forward passe
 from __future__ import annotations
 
 import time
-from typing import Callable, Mapping
+from dataclasses import asdict, dataclass, field
+from typing import Callable, List, Mapping, Optional
 
 import numpy as np
 from torch import nn
 
-from ..checks import positive_int
+from ..checks import check_positive_int
 from . import attention as attention_mod
 from . import retrieval as retrieval_mod
 from .attention import attention_probe
@@ -41,22 +34,26 @@ from .scan import scan_items
 LOGBOOK_PROBES = ("retrieval", "attention", "outliers", "classification", "quantization", "position")
 PROBE_NAMES = LOGBOOK_PROBES  # the probes of the logbook corpus, run by run_probes
 KNOWN_PROBES = LOGBOOK_PROBES + ("drill_attention",)  # check_config also accepts the drill-only probe
-DEFAULTS = {
-    "enabled": list(LOGBOOK_PROBES),
-    "images": True,
-    "n_images": 2,
-    "image_layers": 2,
-    "val_windows": 8,
-    "position_buckets": 8,
-    "max_items": None,
-    "batch_tokens": DEFAULT_BATCH_TOKENS,
-    "every_tokens": None,
-}
+
+
+@dataclass
+class ProbesSchema:
+    """The probes group: its keys and their defaults, written once (``conf/probes/*.yaml`` set
+    only what they choose)."""
+
+    enabled: List[str] = field(default_factory=lambda: list(LOGBOOK_PROBES))  # drawn from KNOWN_PROBES
+    images: bool = True  # the retrieval attention pictures (TensorBoard image tab and PNG)
+    n_images: int = 2  # how many fixed retrieval items to draw
+    image_layers: int = 2  # the last this many layers, one panel each
+    val_windows: int = 8  # validation windows for outliers, quantization and position
+    position_buckets: int = 8  # position ranges of the loss-by-position probe
+    max_items: Optional[int] = None  # cap on items per probe set (evenly spaced); None = all
+    batch_tokens: int = DEFAULT_BATCH_TOKENS  # padded tokens per forward pass
+    every_tokens: Optional[float] = None  # also probe every this many training tokens (the trainer)
+
+
+DEFAULTS = asdict(ProbesSchema())
 WINDOW_PROBES = ("outliers", "quantization", "position")
-
-
-def _positive_int(name: str, value, allow_none: bool = False) -> None:
-    positive_int(f"probes.{name}", value, allow_none)
 
 
 def check_config(probes_cfg: Mapping) -> dict:
@@ -75,11 +72,11 @@ def check_config(probes_cfg: Mapping) -> dict:
     if not isinstance(cfg["images"], bool):
         raise ValueError(f"probes.images={cfg['images']!r}: must be true or false")
     for name in ("n_images", "image_layers", "val_windows", "position_buckets", "batch_tokens"):
-        _positive_int(name, cfg[name])
-    _positive_int("max_items", cfg["max_items"], allow_none=True)
+        check_positive_int(f"probes.{name}", cfg[name])
+    check_positive_int("probes.max_items", cfg["max_items"], allow_none=True)
     if isinstance(cfg["every_tokens"], float) and cfg["every_tokens"].is_integer():
         cfg["every_tokens"] = int(cfg["every_tokens"])  # 5e5 on the command line arrives as a float
-    _positive_int("every_tokens", cfg["every_tokens"], allow_none=True)
+    check_positive_int("probes.every_tokens", cfg["every_tokens"], allow_none=True)
     return cfg
 
 

@@ -151,11 +151,12 @@ def effect_lines(report: Report) -> list[str]:
     seeds = sorted({e.n for e in effects if e.n})
     better = better_direction(report.metric)
     way = f" ({better} is better)" if better else ""
+    shape = "x".join(str(len(f.levels)) for f in report.factors)
     design = " x ".join(f"{f.label} ({', '.join(f.levels)})" for f in report.factors)
     head = (
-        f"{report.metric}{way}: factorial {design}; {'/'.join(map(str, seeds)) or 0} seeds; each effect "
-        f"is a per-seed contrast with a 95% t interval across seeds; direction judged at 0.05 after "
-        f"Holm across the {len(effects)} effects"
+        f"{wording.metric_words(report.metric)}{way}: {shape} factorial, {design}, "
+        f"{'/'.join(map(str, seeds)) or 0} seeds; per-seed contrasts with 95% t intervals; "
+        f"direction at 0.05 after Holm across {len(effects)} effects"
     )
     lines = [head] + [f"  {effect_sentence(report, e)}" for e in effects]
     if report.missing:

@@ -95,14 +95,16 @@ def missing_cells(values: dict[Cell, dict], factors: list[Factor]) -> list[Cell]
 
 
 def effect_estimates(
-    table: dict, factors: list[Factor], metrics: list[str], primary: str, first_stage: list | None = None
+    by_cell: dict, factors: list[Factor], metrics: list[str], primary: str, first_stage: list | None = None
 ) -> list[Estimate]:
     """Every effect (and simple effect) on every metric; Holm across the primary metric's main
     effects and interactions. ``first_stage``: a two-stage design's first seeds (the primary
     metric's intervals are then Stein's)."""
     contrasts = effect_contrasts(factors)
     rows = [
-        estimate({c: table.get(c, {}).get(m, {}) for c in table}, k, m, first_stage if m == primary else None)
+        estimate(
+            {c: by_cell.get(c, {}).get(m, {}) for c in by_cell}, k, m, first_stage if m == primary else None
+        )
         for m in metrics
         for k in contrasts
     ]

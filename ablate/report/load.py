@@ -13,6 +13,20 @@ import numpy as np
 from ablate import records
 from ablate.cells import Cell
 
+__all__ = [
+    "LoadedGrid",
+    "ReportError",
+    "Run",
+    "event_files",
+    "folder_cell",
+    "cell_of",
+    "is_number",
+    "load_grid",
+    "read_scalars",
+    "find_runs",
+    "unfinished_folders",
+]
+
 
 class ReportError(Exception):
     """A problem with the input the user must fix; printed as one line, exit code 2."""
@@ -93,6 +107,7 @@ def event_files(folder: Path) -> list[Path]:
 
 def read_scalars(folder: Path) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """All scalar series of a run, step -> value, merged over its event files (later files win)."""
+    # here, not at the top: tensorboard's reader is a heavy import that only curve reading needs
     from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
 
     merged: dict[str, dict[int, float]] = defaultdict(dict)

@@ -13,8 +13,24 @@ import numpy as np
 
 from ablate import efficiency
 from ablate.cells import Cell
+from ablate.stats import kaplan_meier, mean_ci
 
-from .table import Report
+from .table import Report, budget_tokens
+from .verdicts import formation_family
+
+__all__ = [
+    "interaction_plot",
+    "km_plot",
+    "over_training_plot",
+    "paired_difference_chart",
+    "plot_lambda",
+    "plot_retrieval",
+    "plot_sweep",
+    "plot_val_loss",
+    "retrieval_grid",
+    "short_labels",
+    "pyplot",
+]
 
 LAMBDA_TAG = re.compile(r"^lambda/layer_(\d+)$")
 RETRIEVAL_KEY = re.compile(
@@ -23,6 +39,8 @@ RETRIEVAL_KEY = re.compile(
 
 
 def pyplot():
+    """matplotlib's pyplot on the Agg backend (files only), imported on first use: a report
+    that draws nothing never pays for it."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -128,14 +146,14 @@ def plot_lambda(runs: list, path: Path, labels: dict[str, str]) -> bool:
     return True
 
 
-def retrieval_grid(table) -> dict[str, tuple[list[int], list[float], np.ndarray]]:
+def retrieval_grid(by_cell) -> dict[str, tuple[list[int], list[float], np.ndarray]]:
     """cell -> (lengths, depths, accuracy[depth, length]), mean over seeds.
 
     Uses ``retrieval/acc_len<L>_depth<D>`` where present; otherwise averages the keys that carry
     further axes (``..._depth<D>_n<N>_r<R>``) over those axes.
     """
     grids = {}
-    for cell, per_metric in table.items():
+    for cell, per_metric in by_cell.items():
         exact: dict[tuple[int, float], list] = defaultdict(list)
         finer: dict[tuple[int, float], list] = defaultdict(list)
         for metric, seeds in per_metric.items():
@@ -253,13 +271,12 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
     plt.close(fig)
 
 
-def interaction_plot(report: Report, table: dict, path: Path) -> bool:
+def interaction_plot(report: Report, by_cell: dict, path: Path) -> bool:
     """The primary metric against the first factor's levels, one line per level of the second
     (other factors averaged): per-seed points faint, mean and 95% t interval bold."""
     crossed = [f for f in report.factors if not len(f.within)]
     if len(crossed) < 2:
         return False
-    from ablate.stats import mean_ci
 
     a, b = crossed[0], crossed[1]
     plt = pyplot()
@@ -268,11 +285,11 @@ def interaction_plot(report: Report, table: dict, path: Path) -> bool:
     for j, level_b in enumerate(b.levels):
         per_seed = []
         for level_a in a.levels:
-            cells = [c for c in table if c.get(a.key) == level_a and c.get(b.key) == level_b]
+            cells = [c for c in by_cell if c.get(a.key) == level_a and c.get(b.key) == level_b]
             seeds = (
-                set.intersection(*(set(table[c].get(report.metric, {})) for c in cells)) if cells else set()
+                set.intersection(*(set(by_cell[c].get(report.metric, {})) for c in cells)) if cells else set()
             )
-            per_seed.append({s: np.mean([table[c][report.metric][s] for c in cells]) for s in seeds})
+            per_seed.append({s: np.mean([by_cell[c][report.metric][s] for c in cells]) for s in seeds})
         offset = (j - (len(b.levels) - 1) / 2) * 0.06
         (line,) = ax.plot([], [], marker="o", lw=2.2, label=f"{b.label}={level_b}")
         for i, values in enumerate(per_seed):
@@ -324,20 +341,16 @@ def over_training_plot(report: Report, names: dict, path: Path) -> bool:
     return True
 
 
-def km_plot(report: Report, table: dict, path: Path) -> bool:
+def km_plot(report: Report, by_cell: dict, path: Path) -> bool:
     """Kaplan-Meier curves of the tokens to the halfway level, one per cell: the share of seeds
     that have not reached it yet (not reached by the budget = censored there, marked +)."""
-    from ablate.stats import kaplan_meier
-
-    from .table import budget_tokens
-    from .verdicts import formation_family
 
     family = formation_family(report.metric)
     budget = budget_tokens(report.runs)
     if family is None or not math.isfinite(budget):
         return False
     curves = {}
-    for cell, per in sorted(table.items()):
+    for cell, per in sorted(by_cell.items()):
         flags, times = per.get(f"{family}/half_reached", {}), per.get(f"{family}/tokens_to_half", {})
         if flags:
             t = [times.get(s, budget) if flags[s] > 0.5 else budget for s in flags]

@@ -10,6 +10,17 @@ from ablate import calibration
 from . import attribution, wording
 from .table import LOSS, Report
 
+__all__ = [
+    "CSV_COLUMNS",
+    "console",
+    "csv_rows",
+    "headline",
+    "markdown",
+    "named",
+    "verdict_sentence",
+    "markdown_table",
+]
+
 CSV_COLUMNS = [
     "cell",
     "metric",
@@ -87,7 +98,7 @@ def replaced_lines(report: Report) -> list[str]:
     return out
 
 
-def table(header: list[str], rows: list[list]) -> list[str]:
+def markdown_table(header: list[str], rows: list[list]) -> list[str]:
     lines = ["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"]
     return lines + ["| " + " | ".join(str(c).replace("|", "/") for c in row) + " |" for row in rows]
 
@@ -155,7 +166,8 @@ def family_tables(report: Report) -> list[str]:
             if r.metric == m
         ]
         out += [f"### {family}", ""]
-        out += table(["metric", "cell", "mean [95% CI]", "paired diff [95% CI]", "paired n", "context"], body)
+        header = ["metric", "cell", "mean [95% CI]", "paired diff [95% CI]", "paired n", "context"]
+        out += markdown_table(header, body)
         out.append("")
     return out
 
@@ -190,7 +202,7 @@ def fairness_lines(report: Report) -> list[str]:
         ]
         for f in report.fairness
     ]
-    return table(
+    return markdown_table(
         [
             "cell",
             "params",
@@ -228,7 +240,7 @@ def appendix(report: Report) -> list[str]:
     return (
         out
         + [""]
-        + table(
+        + markdown_table(
             [
                 "metric",
                 "cell",
@@ -268,7 +280,7 @@ def attribution_section(report: Report, plots: list[tuple[str, str]]) -> list[st
         "over the secondary metrics.",
         "",
     ]
-    return md + table(header, rows) + [""]
+    return md + markdown_table(header, rows) + [""]
 
 
 def markdown(report: Report, plots: list[tuple[str, str]]) -> str:
@@ -305,7 +317,7 @@ def markdown(report: Report, plots: list[tuple[str, str]]) -> str:
         md += ["", "## Efficiency across the sweep", ""] + efficiency_lines(report)
     md += ["", "## Runs left out of the averages", ""]
     md += (
-        table(
+        markdown_table(
             ["run folder", "status", "where", "reason"],
             [[f"`{x.folder}`", x.status, x.where, x.reason] for x in report.left_out],
         )

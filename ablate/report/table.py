@@ -24,7 +24,24 @@ from ablate.stats import holm, mean_ci, paired_difference, seeds_needed_range
 
 from . import effects as fx
 from . import verdicts
-from .load import LoadedGrid, ReportError, Run, folder_cell, is_number
+from .load import LoadedGrid, ReportError, Run, folder_cell, is_number, read_scalars
+
+__all__ = [
+    "Report",
+    "CellRuns",
+    "MetricRow",
+    "Context",
+    "FairnessRow",
+    "LeftOut",
+    "TestCount",
+    "LOSS",
+    "build",
+    "values_by_cell",
+    "better_direction",
+    "budget_tokens",
+    "resolution_for",
+    "reference_cells",
+]
 
 LOSS = "final_val_loss"
 # Numbers that describe a probe set or a run rather than measure a design: shown, never tested.
@@ -193,12 +210,13 @@ def reference_cells(cells: list[Cell], baseline: Cell, sweep_key: str | None) ->
 def run_numbers(run: Run) -> dict[str, float]:
     values = {LOSS: run.summary.final_val_loss}
     values.update(run.summary.probes or {})
+    values.update(run.summary.curve_metrics or {})
     return {str(k): float(v) for k, v in values.items() if is_number(v) and math.isfinite(float(v))}
 
 
 def values_by_cell(runs: list[Run]) -> dict[Cell, dict[str, dict]]:
     """cell -> key -> {seed: value}, completed runs only; duplicate seeds are an error."""
-    table: dict[Cell, dict[str, dict]] = defaultdict(lambda: defaultdict(dict))
+    by_cell: dict[Cell, dict[str, dict]] = defaultdict(lambda: defaultdict(dict))
     owner: dict[tuple, str] = {}
     for run in runs:
         if not run.usable:
@@ -210,8 +228,8 @@ def values_by_cell(runs: list[Run]) -> dict[Cell, dict[str, dict]]:
             )
         owner[key] = run.name
         for name, value in run_numbers(run).items():
-            table[run.cell][name][run.summary.seed] = value
-    return table
+            by_cell[run.cell][name][run.summary.seed] = value
+    return by_cell
 
 
 def cells_of(loaded: LoadedGrid) -> list[CellRuns]:
@@ -233,14 +251,14 @@ def cells_of(loaded: LoadedGrid) -> list[CellRuns]:
     ]
 
 
-def censoring(table, cell: Cell, metric: str) -> str:
+def censoring(by_cell, cell: Cell, metric: str) -> str:
     """'not reached in k of n seeds' for a tokens-to metric some seed did not reach, else ''."""
     match = TOKENS_TO.match(metric)
     if not match:
         return ""
-    flags = table.get(cell, {}).get(f"{match['family']}/{match['level']}_reached", {})
-    n = len(table.get(cell, {}).get(LOSS, {}))
-    missed = sum(1 for v in flags.values() if v < 0.5) if flags else n - len(table[cell].get(metric, {}))
+    flags = by_cell.get(cell, {}).get(f"{match['family']}/{match['level']}_reached", {})
+    n = len(by_cell.get(cell, {}).get(LOSS, {}))
+    missed = sum(1 for v in flags.values() if v < 0.5) if flags else n - len(by_cell[cell].get(metric, {}))
     return f"not reached in {missed} of {n} seeds" if missed else ""
 
 
@@ -269,16 +287,16 @@ def fill_seeds_needed(row: MetricRow) -> None:
         row.seeds_needed = seeds_needed_range(row.diff_std, row.n_paired, row.resolution)
 
 
-def metric_row(table, cell: Cell, metric: str, ref: Cell, primary: tuple[str, float]) -> MetricRow:
-    seeds = table.get(cell, {}).get(metric, {})
+def metric_row(by_cell, cell: Cell, metric: str, ref: Cell, primary: tuple[str, float]) -> MetricRow:
+    seeds = by_cell.get(cell, {}).get(metric, {})
     row = MetricRow(cell, metric, ref, n=len(seeds))
-    row.censored = censoring(table, cell, metric) or (
-        censoring(table, ref, metric) and "reference " + censoring(table, ref, metric)
+    row.censored = censoring(by_cell, cell, metric) or (
+        censoring(by_cell, ref, metric) and "reference " + censoring(by_cell, ref, metric)
     )
     if seeds and not row.censored:
         row.mean, row.ci_low, row.ci_high = mean_ci(list(seeds.values()))
-        fill_difference(row, seeds, table.get(ref, {}).get(metric, {}))
-    values = [v for c in table.values() for v in c.get(metric, {}).values()]
+        fill_difference(row, seeds, by_cell.get(ref, {}).get(metric, {}))
+    values = [v for c in by_cell.values() for v in c.get(metric, {}).values()]
     row.resolution = resolution_for(metric, primary[0], primary[1], values)
     fill_seeds_needed(row)
     return row
@@ -289,11 +307,11 @@ def natural(text: str) -> tuple:
     return tuple((0, int(t), "") if t.isdigit() else (1, 0, t) for t in re.split(r"(\d+)", text) if t)
 
 
-def metric_rows(table, refs: dict[Cell, Cell], primary: tuple[str, float]) -> list[MetricRow]:
-    keys = {m for per in table.values() for m in per if not is_context(m)}
+def metric_rows(by_cell, refs: dict[Cell, Cell], primary: tuple[str, float]) -> list[MetricRow]:
+    keys = {m for per in by_cell.values() for m in per if not is_context(m)}
     metrics = sorted(keys, key=lambda m: (m != primary[0], m != LOSS, natural(m)))
     return [
-        metric_row(table, cell, metric, refs[cell], primary) for metric in metrics for cell in sorted(refs)
+        metric_row(by_cell, cell, metric, refs[cell], primary) for metric in metrics for cell in sorted(refs)
     ]
 
 
@@ -331,14 +349,14 @@ def mark_reduced(rows: list[MetricRow], cells: list[CellRuns]) -> None:
             row.reduced = f"paired on {row.n_paired} of {most} launched seeds"
 
 
-def context_values(table) -> list[Context]:
+def context_values(by_cell) -> list[Context]:
     """Metadata per cell (copy levels, item counts, reached flags, probe timings): listed, not tested."""
     out = []
-    for cell in sorted(table):
-        for key in sorted(table[cell], key=natural):
+    for cell in sorted(by_cell):
+        for key in sorted(by_cell[cell], key=natural):
             if is_context(key):
                 out.append(
-                    Context(cell, key, [table[cell][key][s] for s in sorted(table[cell][key], key=str)])
+                    Context(cell, key, [by_cell[cell][key][s] for s in sorted(by_cell[cell][key], key=str)])
                 )
     return out
 
@@ -394,8 +412,6 @@ def left_out(loaded: LoadedGrid) -> list[LeftOut]:
 
 
 def last_logged(folder, scalars=None) -> str:
-    from .load import read_scalars
-
     scalars = read_scalars(folder) if scalars is None else scalars
     steps = [int(st[-1]) for st, _ in scalars.values() if st.size]
     return f"last logged at {max(steps):,} tokens" if steps else "no curves logged"
@@ -473,13 +489,13 @@ def build(
     resolution_asked = resolution
     resolution = resolution or (record.resolution if record else None)
     resolution = resolution or resolution_for(loaded.metric, "", None, [])
-    table = values_by_cell(loaded.runs)
-    if not any(loaded.metric in per for per in table.values()):
+    by_cell = values_by_cell(loaded.runs)
+    if not any(loaded.metric in per for per in by_cell.values()):
         raise ReportError(f"primary metric {loaded.metric!r}: no completed run has it")
     sweep = record.sweep if record else None
     refs = reference_cells(sorted({r.cell for r in loaded.runs}), loaded.baseline, (sweep or {}).get("key"))
     cells = cells_of(loaded)
-    rows = metric_rows(table, refs, (loaded.metric, resolution))
+    rows = metric_rows(by_cell, refs, (loaded.metric, resolution))
     mark_reduced(rows, cells)
     tests = adjust_and_count(rows, loaded.metric)
     report = Report(
@@ -494,7 +510,7 @@ def build(
         rows=rows,
         verdicts=[],
         tests=tests,
-        context=context_values(table),
+        context=context_values(by_cell),
         fairness=fairness_rows(loaded.runs, refs, record.tolerance if record else 0.02),
         left_out=left_out(loaded),
         rounds=record.rounds if record else 1,
@@ -507,8 +523,8 @@ def build(
     report.declared_resolution = record.resolution if record else None
     first_stage = list(record.first_stage) if record and record.first_stage else None
     report.first_stage = first_stage
-    report.verdicts = pairwise_verdicts(report, table, first_stage)
-    attribute(report, table, record, first_stage)
+    report.verdicts = pairwise_verdicts(report, by_cell, first_stage)
+    attribute(report, by_cell, record, first_stage)
     if sweep:
         report.efficiency, report.fits, report.sweep_designs, report.efficiency_notes = efficiency_results(
             loaded.runs, sweep, loaded.baseline, resamples, seed
@@ -522,17 +538,18 @@ def budget_tokens(runs: list[Run]) -> float:
     return max(tokens) if tokens else math.nan
 
 
-def pairwise_verdicts(report: Report, table: dict, first_stage: list | None) -> list:
-    """Every cell against its reference on the primary metric; the primary rows of the table take
+def pairwise_verdicts(report: Report, by_cell: dict, first_stage: list | None) -> list:
+    """Every cell against its reference on the primary metric; the primary rows of the by_cell take
     the verdicts' Holm-adjusted p-values, so the headline and the appendix agree."""
     notes = {
         pair_contrast(r.cell, r.reference): (r.reduced, r.censored)
         for r in report.rows
         if r.metric == report.metric and not r.is_reference
     }
-    estimates = verdicts.primary_estimates(table, fx.pair_contrasts(report.refs), report.metric, first_stage)
+    pairs = fx.pair_contrasts(report.refs)
+    estimates = verdicts.primary_estimates(by_cell, pairs, report.metric, first_stage)
     found = verdicts.primary_verdicts(
-        table, estimates, report.resolution, bool(first_stage), budget_tokens(report.runs), notes
+        by_cell, estimates, report.resolution, bool(first_stage), budget_tokens(report.runs), notes
     )
     by_pair = {v.contrast: v for v in found}
     for row in report.rows:
@@ -542,18 +559,18 @@ def pairwise_verdicts(report: Report, table: dict, first_stage: list | None) -> 
     return found
 
 
-def attribute(report: Report, table: dict, record, first_stage: list | None) -> None:
+def attribute(report: Report, by_cell: dict, record, first_stage: list | None) -> None:
     """A factorial grid's effects on every metric (the primary family as verdicts), the cells it
     misses, and the primary metric's effects over training; a pairwise grid's differences over
     training."""
     report.factors = [Factor.from_dict(f) for f in (record.factors if record else [])]
     if report.factors:
         metrics = list(dict.fromkeys(r.metric for r in report.rows))
-        report.effects = fx.effect_estimates(table, report.factors, metrics, report.metric, first_stage)
-        report.missing = fx.missing_cells(table, report.factors)
+        report.effects = fx.effect_estimates(by_cell, report.factors, metrics, report.metric, first_stage)
+        report.missing = fx.missing_cells(by_cell, report.factors)
         family = [e for e in report.effects if e.metric == report.metric and e.contrast.kind != "simple"]
         report.effect_verdicts = verdicts.primary_verdicts(
-            table, family, report.resolution, bool(first_stage), budget_tokens(report.runs)
+            by_cell, family, report.resolution, bool(first_stage), budget_tokens(report.runs)
         )
         contrasts = [e.contrast for e in report.effects if e.metric == report.metric]
     else:

@@ -122,8 +122,8 @@ def formation_family(metric: str) -> str | None:
     return family if "/" in metric and family.startswith("drill") else None
 
 
-def formation_of(table: dict, contrast: Contrast, family: str) -> Formation | None:
-    flags = {c: table.get(c, {}).get(f"{family}/half_reached", {}) for c in contrast.cells}
+def formation_of(by_cell: dict, contrast: Contrast, family: str) -> Formation | None:
+    flags = {c: by_cell.get(c, {}).get(f"{family}/half_reached", {}) for c in contrast.cells}
     if not all(flags.values()):
         return None
     out = Formation({c: (sum(v > 0.5 for v in f.values()), len(f)) for c, f in flags.items()})
@@ -136,13 +136,13 @@ def formation_of(table: dict, contrast: Contrast, family: str) -> Formation | No
     return out
 
 
-def timing_of(table: dict, contrast: Contrast, family: str, budget: float) -> Timing | None:
+def timing_of(by_cell: dict, contrast: Contrast, family: str, budget: float) -> Timing | None:
     key = f"{family}/tokens_to_half"
-    flags = {c: table.get(c, {}).get(f"{family}/half_reached", {}) for c in contrast.cells}
+    flags = {c: by_cell.get(c, {}).get(f"{family}/half_reached", {}) for c in contrast.cells}
     if not all(flags.values()):
         return None
     times = {
-        c: {s: table[c].get(key, {}).get(s) if f[s] > 0.5 else None for s in f} for c, f in flags.items()
+        c: {s: by_cell[c].get(key, {}).get(s) if f[s] > 0.5 else None for s in f} for c, f in flags.items()
     }
     medians = {}
     for c, by_seed in times.items():
@@ -174,12 +174,12 @@ def _needed(e: Estimate, resolution: float | None) -> tuple[tuple | None, str]:
 
 
 def primary_estimates(
-    table: dict, contrasts: list[Contrast], metric: str, first_stage: list | None
+    by_cell: dict, contrasts: list[Contrast], metric: str, first_stage: list | None
 ) -> list[Estimate]:
     """Each primary comparison's estimate, p-values Holm-adjusted across them (Holm, 1979).
     ``first_stage``: the seeds of a two-stage design's first round (Stein's interval), else None
     (paired t)."""
-    values = {c: table.get(c, {}).get(metric, {}) for c in table}
+    values = {c: by_cell.get(c, {}).get(metric, {}) for c in by_cell}
     found = [estimate(values, contrast, metric, first_stage) for contrast in contrasts]
     for e, p in zip(found, holm([e.p for e in found])):
         e.p_holm = float(p)
@@ -187,7 +187,7 @@ def primary_estimates(
 
 
 def primary_verdicts(
-    table: dict,
+    by_cell: dict,
     estimates: list[Estimate],
     resolution: float | None,
     two_stage: bool,
@@ -204,7 +204,7 @@ def primary_verdicts(
         verdict.reduced, verdict.censored = (notes or {}).get(e.contrast, ("", ""))
         family = formation_family(e.metric)
         if family:
-            verdict.formation = formation_of(table, e.contrast, family)
-            verdict.timing = timing_of(table, e.contrast, family, budget)
+            verdict.formation = formation_of(by_cell, e.contrast, family)
+            verdict.timing = timing_of(by_cell, e.contrast, family, budget)
         out.append(verdict)
     return out

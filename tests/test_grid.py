@@ -181,6 +181,21 @@ def test_factorial_grid_effects_equal_a_hand_computation_from_the_summaries(tmp_
             pytest.approx(high, abs=1e-12),
         )
         assert any(line.strip().startswith(name) for line in first)
+    # TensorBoard's HPARAMS view filters by factor: each run records its levels (read back with
+    # tensorboard's own event reader and its hparams plugin protos).
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+    from tensorboard.plugins.hparams import plugin_data_pb2
+
+    run = next(r for r in run_dirs(grid_dir) if "head_norm=True" in summary(r)["cell"])
+    acc = EventAccumulator(str(run))
+    acc.Reload()
+    starts = [
+        plugin_data_pb2.HParamsPluginData.FromString(raw)
+        for raw in acc.PluginTagToContent("hparams").values()
+    ]
+    hparams = next(d.session_start_info.hparams for d in starts if d.HasField("session_start_info"))
+    assert hparams["factor/attention.head_norm"].string_value == "True"
+    assert hparams["factor/attention"].string_value == summary(run)["choices"]["attention"]
 
 
 def test_nested_factors_launch_as_branches_and_make_no_impossible_cells():

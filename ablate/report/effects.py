@@ -30,11 +30,7 @@ __all__ = [
     "missing_cells",
     "trajectories",
     "curve_of",
-    "CURVE_NAMES",
 ]
-
-# The logged curve behind a final metric: its TensorBoard tag, or how it is formed from one.
-CURVE_NAMES = {"final_val_loss": "loss/val", "drill/auc": "area under drill/acc up to each point"}
 
 
 @dataclass

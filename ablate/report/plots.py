@@ -49,6 +49,13 @@ def pyplot():
     return plt
 
 
+def _save(plt, fig, path: Path) -> None:
+    """Every figure is laid out, written at one resolution and closed the same way."""
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
 def paired_difference_chart(report: Report, path: Path) -> bool:
     shown = [v.estimate for v in report.verdicts if math.isfinite(v.estimate.mean)]
     if not shown:
@@ -65,9 +72,7 @@ def paired_difference_chart(report: Report, path: Path) -> bool:
     ax.set_ylabel(f"paired difference in {report.metric}")
     method = "two-stage t" if report.first_stage else "t"
     ax.set_title(f"{report.metric}: cell minus reference\nwhiskers = 95% {method} interval", fontsize=9)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _save(plt, fig, path)
     return True
 
 
@@ -108,9 +113,7 @@ def plot_val_loss(runs: list, path: Path, labels: dict[str, str]) -> list[str]:
     ax.set_ylabel("validation loss (nats)")
     ax.set_title("validation loss: mean over seeds, band = min to max")
     ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _save(plt, fig, path)
     return sorted(by_cell)
 
 
@@ -140,9 +143,7 @@ def plot_lambda(runs: list, path: Path, labels: dict[str, str]) -> bool:
         ax.set_xlabel("tokens seen")
         ax.set_ylabel("lambda (mean over seeds)")
         ax.legend(fontsize=7)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _save(plt, fig, path)
     return True
 
 
@@ -266,9 +267,7 @@ def plot_sweep(path, axis: str, cells_by_choice: dict, fits: dict, comparisons: 
     )
     if comparisons:
         right.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _save(plt, fig, path)
 
 
 def interaction_plot(report: Report, by_cell: dict, path: Path) -> bool:
@@ -309,9 +308,7 @@ def interaction_plot(report: Report, by_cell: dict, path: Path) -> bool:
         f"{report.metric} by {a.label} and {b.label}\nfaint: seeds; bold: mean, 95% t interval", fontsize=9
     )
     ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _save(plt, fig, path)
     return True
 
 
@@ -335,16 +332,13 @@ def over_training_plot(report: Report, names: dict, path: Path) -> bool:
     ax.set_ylabel(f"effect on {report.metric}")
     ax.set_title(f"{report.metric}: effects over training (band: 95% t interval across seeds)", fontsize=9)
     ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _save(plt, fig, path)
     return True
 
 
 def km_plot(report: Report, by_cell: dict, path: Path) -> bool:
     """Kaplan-Meier curves of the tokens to the halfway level, one per cell: the share of seeds
     that have not reached it yet (not reached by the budget = censored there, marked +)."""
-
     family = formation_family(report.metric)
     budget = budget_tokens(report.runs)
     if family is None or not math.isfinite(budget):
@@ -375,7 +369,5 @@ def km_plot(report: Report, by_cell: dict, path: Path) -> bool:
     ax.set_ylim(-0.02, 1.02)
     ax.set_title("Kaplan-Meier: tokens to the halfway level (+ = not reached by the budget)", fontsize=9)
     ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    _save(plt, fig, path)
     return True

@@ -264,7 +264,12 @@ def images(plots: list[tuple[str, str]], *names: str) -> list[str]:
 
 def bullets(lines: list[str], end: str = "") -> list[str]:
     """Markdown list items; an indented line becomes an item under the one before."""
-    return [f"  - {ln.strip()}{end}" if ln.startswith("  ") else f"- {ln.strip()}{end}" for ln in lines]
+
+    def item(ln: str) -> str:
+        text = ln.strip()
+        return text if text.endswith(".") else text + end
+
+    return [f"  - {item(ln)}" if ln.startswith("  ") else f"- {item(ln)}" for ln in lines]
 
 
 def attribution_section(report: Report, plots: list[tuple[str, str]]) -> list[str]:

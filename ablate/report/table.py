@@ -565,7 +565,10 @@ def attribute(report: Report, by_cell: dict, record, first_stage: list | None) -
     training."""
     report.factors = [Factor.from_dict(f) for f in (record.factors if record else [])]
     if report.factors:
-        metrics = list(dict.fromkeys(r.metric for r in report.rows))
+        # a tokens-to metric some seed did not reach has no mean to contrast (censored, never
+        # imputed): the Kaplan-Meier lines and figure speak for it
+        censored = {r.metric for r in report.rows if r.censored}
+        metrics = list(dict.fromkeys(r.metric for r in report.rows if r.metric not in censored))
         report.effects = fx.effect_estimates(by_cell, report.factors, metrics, report.metric, first_stage)
         report.missing = fx.missing_cells(by_cell, report.factors)
         family = [e for e in report.effects if e.metric == report.metric and e.contrast.kind != "simple"]

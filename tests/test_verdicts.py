@@ -171,3 +171,15 @@ def test_the_trust_section_quotes_the_shipped_simulations(tmp_path):
     row = next(r for r in calibration.load() if r["rule"] == "fixed" and r["seeds"] == 4)
     assert f"covered the truth {row['coverage']:.3f}" in section and f"{row['reps']:,} simulations" in section
     assert "tested alone at 0.05" in section
+
+
+def test_no_spread_is_never_resolved(tmp_path):
+    # An A/A grid with common random numbers gives the same value in every seed: no interval
+    # exists, whatever the resolution asked.
+    for s in SEEDS:
+        write(tmp_path, "attention=standard", s, 3.0 + s / 10)
+        write(tmp_path, "attention=standard_copy", s, 3.0 + s / 10)
+    grid_json(tmp_path, resolution=0.01)
+    (v,) = build(tmp_path).verdicts
+    assert v.status == "no spread" and v.precision == "no interval"
+    assert "no interval exists" in " ".join(render.headline(build(tmp_path)))

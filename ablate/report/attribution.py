@@ -56,6 +56,8 @@ def term_name(report: Report, contrast: Contrast) -> str:
 
 
 def interval_text(e: Estimate) -> str:
+    if e.status == "no spread":
+        return f"{signed(e.mean)} in every seed (no spread: no interval)"
     if not math.isfinite(e.low):
         return f"{signed(e.mean)} (no interval: {e.status})"
     return f"{signed(e.mean)} (95% CI {signed(e.low)} to {signed(e.high)})"

@@ -101,8 +101,8 @@ class Verdict:
     @property
     def precision(self) -> str:
         """``resolved`` | ``not resolved`` | ``formation incomplete`` | ``no interval``."""
-        if not math.isfinite(self.half) or self.resolution is None:
-            return "no interval"
+        if self.estimate.status != "estimated" or not math.isfinite(self.half) or self.resolution is None:
+            return "no interval"  # no spread (never "resolved"), one seed, missing cells
         if self.formation is not None and not self.formation.enough:
             return "formation incomplete"
         return "resolved" if self.half <= self.resolution else "not resolved"

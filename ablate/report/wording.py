@@ -96,6 +96,8 @@ def direction_text(v: Verdict) -> str:
 def precision_text(v: Verdict) -> str:
     """The half-width against the resolution asked, and the seeds that would reach it."""
     if v.precision == "no interval":
+        if v.estimate.status == "no spread":
+            return "Precision: no interval exists (no spread across seeds); not resolved."
         return "Precision: no interval." if v.resolution is not None else "Precision: no resolution set."
     u = unit(v.estimate.metric)
     head = f"Precision: +/-{v.half:.2g}{u} against the +/-{v.resolution:g} asked"

@@ -33,7 +33,7 @@ SEED = 20261205
 REPS = 20000
 FIXED_SEEDS = (3, 4, 6, 8, 16)
 # (first stage, cap, resolution in SDs of the paired difference)
-TWO_STAGE = [(n0, cap, w) for n0 in (3, 4) for cap in (8, 32) for w in (0.3, 1.0, 3.0)]
+TWO_STAGE = [(n0, cap, w) for n0 in (3, 4) for cap in (8, 16, 32) for w in (0.3, 1.0, 3.0)]
 FORMATION = [(4, 0.10, 0.25), (8, 0.10, 0.25), (4, 0.5, 0.5)]
 
 

@@ -169,8 +169,11 @@ def _shared_points(curves_by_cell: dict[Cell, dict]) -> list[float]:
     return sorted(set.intersection(*steps)) if steps else []
 
 
-def trajectories(runs: list, metric: str, contrasts: list[Contrast]) -> list[Trajectory]:
-    """Each contrast at each evaluation point every usable run logged (empty without curves)."""
+def trajectories(
+    runs: list, metric: str, contrasts: list[Contrast], first_stage: list | None = None
+) -> list[Trajectory]:
+    """Each contrast at each evaluation point every usable run logged (empty without curves), with
+    the same interval rule as the verdicts (Stein's after seed rounds, ``first_stage``)."""
     by_cell: dict[Cell, dict] = {}
     for run in runs:
         curve = curve_of(run.scalars, metric) if run.usable else None
@@ -187,7 +190,7 @@ def trajectories(runs: list, metric: str, contrasts: list[Contrast]) -> list[Tra
                 c: {s: float(v[np.flatnonzero(s_ == t)[0]]) for s, (s_, v) in seeds.items()}
                 for c, seeds in by_cell.items()
             }
-            traj.points.append((t, estimate(values, contrast, metric)))
+            traj.points.append((t, estimate(values, contrast, metric, first_stage)))
         out.append(traj)
     return out
 

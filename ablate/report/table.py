@@ -188,6 +188,7 @@ class Report:
     over_training: list = field(default_factory=list)  # [effects.Trajectory] on the primary metric
     effect_verdicts: list = field(default_factory=list)  # [verdicts.Verdict]: the factorial headline
     first_stage: list | None = None  # seeds of a two-stage design's first round (seed rounds)
+    max_seeds: int | None = None  # the seed rounds' cap (grid.max_seeds)
     metric_given: bool = False  # --metric on the command line
     declared_metric: str | None = None  # the recipe's grid.primary_metric
     resolution_given: bool = False
@@ -523,6 +524,7 @@ def build(
     report.declared_resolution = record.resolution if record else None
     first_stage = list(record.first_stage) if record and record.first_stage else None
     report.first_stage = first_stage
+    report.max_seeds = record.max_seeds if record else None
     report.verdicts = pairwise_verdicts(report, by_cell, first_stage)
     attribute(report, by_cell, record, first_stage)
     if sweep:
@@ -578,4 +580,4 @@ def attribute(report: Report, by_cell: dict, record, first_stage: list | None) -
         contrasts = [e.contrast for e in report.effects if e.metric == report.metric]
     else:
         contrasts = fx.pair_contrasts(report.refs)
-    report.over_training = fx.trajectories(report.runs, report.metric, contrasts)
+    report.over_training = fx.trajectories(report.runs, report.metric, contrasts, first_stage)

@@ -123,7 +123,8 @@ def drill_text(v: Verdict) -> list[str]:
         counts = "; ".join(f"{names[c]} {k} of {n}" for c, (k, n) in f.formed.items())
         text = f"Formed recall (reached halfway): {counts}"
         if f.only_cell is not None:
-            text += f"; they disagree on {f.only_cell + f.only_reference} seeds, exact McNemar p = {f.p:.2g}"
+            n = f.only_cell + f.only_reference
+            text += f"; they disagree on {n} seed{'s' if n != 1 else ''}, exact McNemar p = {f.p:.2g}"
         out.append(text + ".")
     if t is not None:
         names = cell_names(list(t.medians))
@@ -184,8 +185,11 @@ def trust_lines(report: Report, rows: list[dict]) -> list[str]:
         + "; the other metrics are secondary, Holm-adjusted within each comparison (the appendix).",
     ]
     if report.first_stage:
-        cap = max(n, len(report.seeds))
-        row = _nearest(rows, "two-stage", first_stage=len(report.first_stage), cap=cap)
+        first = [v.estimate.values[s] for v in verdicts for s in report.first_stage if s in v.estimate.values]
+        s0 = float(np.std(first, ddof=1)) if len(first) > 1 else 0.0
+        ratio = report.resolution / s0 if s0 > 0 and report.resolution else None
+        cap = report.max_seeds or max(n, len(report.seeds))
+        row = _nearest(rows, "two-stage", first_stage=len(report.first_stage), cap=cap, resolution_sd=ratio)
         out.append(
             f"Seeds: two-stage rounds (Stein 1945: {len(report.first_stage)} first-stage seeds fixed "
             "the total at "

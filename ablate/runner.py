@@ -126,14 +126,6 @@ def set_threads(runtime: dict, parallel_jobs: int | None) -> None:
         torch.set_num_threads(int(threads))
 
 
-def resolve_device(name: str) -> torch.device:
-    if name.startswith("cuda") and not torch.cuda.is_available():
-        raise ConfigError(
-            f"runtime.device={name!r}: CUDA is not available on this machine; use runtime.device=cpu"
-        )
-    return torch.device(name)
-
-
 def hparams_of(choices: dict, resolved: dict) -> dict:
     """Design values for TensorBoard's hparams table: group choices plus scalar options."""
     values = {f"choice/{k}": str(v) for k, v in sorted(choices.items()) if v is not None}
@@ -208,7 +200,7 @@ def prepare(cfg, info: RunInfo, parallel_jobs: int | None) -> tuple[RunState, di
     in the folder is rewritten; returns the state and the checkpoint to resume from, if any."""
 
     resolved = OmegaConf.to_container(cfg, resolve=True)
-    device = resolve_device(resolved["runtime"]["device"])
+    device = torch.device(resolved["runtime"]["device"])  # available: checked in the pre-flight
     info.run_dir.mkdir(parents=True, exist_ok=True)
     fingerprint = records.config_fingerprint(resolved)
     ckpt_path = info.run_dir / records.CHECKPOINT

@@ -11,6 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional
 
+import torch
 from hydra.core.config_store import ConfigStore
 
 from toy_corpus.config import LogbookSchema
@@ -143,6 +144,10 @@ def check_ranges(cfg) -> None:
     check_positive_int("budget.log_every_steps", b.log_every_steps, error=ConfigError)
     if r.device not in ("cpu", "cuda") and not str(r.device).startswith("cuda:"):
         raise ConfigError(f"runtime.device={r.device!r}: allowed: cpu, cuda, cuda:<index>")
+    if str(r.device).startswith("cuda") and not torch.cuda.is_available():
+        raise ConfigError(
+            f"runtime.device={r.device!r}: CUDA is not available on this machine; use runtime.device=cpu"
+        )
     if r.threads is not None:
         check_positive_int("runtime.threads", r.threads, error=ConfigError)
     if r.kernels not in KERNELS:

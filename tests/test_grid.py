@@ -264,3 +264,14 @@ def test_flop_matched_budgets_are_priced_before_the_runs(tmp_path, cache):
     grid = records.read_grid(tmp_path / "single")
     config = (run_dirs(tmp_path)[0] / "config.yaml").read_text()
     assert "flops: null" not in config and set(grid.budget_flops) == {"model.d_model=64", "model.d_model=128"}
+
+
+def test_cuda_asked_for_where_there_is_none_stops_in_the_preflight():
+    # No silent fallback to the CPU: the pre-flight refuses runtime.device=cuda without CUDA.
+    import torch
+
+    if torch.cuda.is_available():
+        assert preflight(["runtime.device=cuda", "budget=smoke"]) is None
+    else:
+        with pytest.raises(ConfigError, match="runtime.device='cuda': CUDA is not available"):
+            preflight(["runtime.device=cuda", "budget=smoke"])

@@ -81,7 +81,9 @@ def comparison_text(v: Verdict) -> str:
             way = "higher" if e.mean > 0 else "lower"
         else:
             way = "better" if (e.mean < 0) == (better == "lower") else "worse"
-        return f"{who} is {way} than {ref} by {abs(e.mean):.3g}{u} {ci}"
+        low, high = (e.low, e.high) if e.mean >= 0 else (-e.high, -e.low)  # the interval of the "by"
+        by_ci = f"(95% CI {fmt(low)} to {fmt(high)}; {v.method}, {seeds})"
+        return f"{who} is {way} than {ref} by {abs(e.mean):.3g}{u} {by_ci}"
     return f"{who} minus {ref}: {e.mean:+.3g}{u} {ci}"
 
 

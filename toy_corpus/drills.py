@@ -35,6 +35,7 @@ import numpy as np
 
 DRILL_KINDS = ("recall", "noisy_recall", "induction")
 QUERY_SAMPLINGS = ("permutation", "replacement", "cycles")
+POOLS = ("separate", "shared")
 LOSS_ON = ("answers", "all")
 HELD_OUT_SPAWN_KEY = 1
 
@@ -47,6 +48,7 @@ class DrillConfig:
     n_pairs: int = 8  # recall, noisy_recall: key/value pairs in the context
     n_keys: int = 16  # recall: key symbols; noisy_recall: first-token symbols
     n_values: int = 16  # recall, noisy_recall: value symbols
+    pools: str = "separate"  # recall: "separate" key and value symbols, or one "shared" pool of n_keys
     n_queries: int = 8  # recall, noisy_recall: queries after the separator
     min_pairs: int | None = None  # recall, noisy_recall: training sequences hold min_pairs..n_pairs pairs
     query_sampling: str = "permutation"  # permutation | replacement | cycles
@@ -63,6 +65,7 @@ class DrillConfig:
         _check_choice("kind", self.kind, DRILL_KINDS)
         _check_choice("loss_on", self.loss_on, LOSS_ON)
         _check_choice("query_sampling", self.query_sampling, QUERY_SAMPLINGS)
+        _check_choice("pools", self.pools, POOLS)
         _check_int("seed", self.seed, 0)
         for name in (
             "n_pairs",
@@ -90,7 +93,9 @@ class DrillConfig:
     def _check_recall(self) -> None:
         n = self.n_pairs
         _check_int("n_values", self.n_values, n, f"data.n_pairs={n} (values are distinct)")
-        if self.kind == "recall":
+        if self.kind == "recall" and self.pools == "shared":
+            _check_int("n_keys", self.n_keys, 2 * n, f"2 * data.n_pairs={2 * n} (keys and values distinct)")
+        elif self.kind == "recall":
             _check_int("n_keys", self.n_keys, n, f"data.n_pairs={n} (keys are distinct)")
         if self.min_pairs is not None and self.min_pairs > n:
             raise ValueError(
@@ -246,14 +251,23 @@ class _Recall(_Pairs):
     then (when training sequences mix pair counts) the padding symbol."""
 
     def __init__(self, cfg: DrillConfig):
-        self.value0 = cfg.n_keys
-        self.setup(cfg, cfg.n_keys + cfg.n_values, 2)
+        self.shared = cfg.pools == "shared"
+        self.value0 = 0 if self.shared else cfg.n_keys
+        self.setup(cfg, cfg.n_keys if self.shared else cfg.n_keys + cfg.n_values, 2)
+
+    def symbols(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray]:
+        """Keys and values ``[batch, n]``: distinct within each; with a shared pool, 2n distinct
+        symbols of one pool (the first n are the keys)."""
+        if self.shared:
+            both = distinct(rng, (batch,), self.cfg.n_keys, 2 * self.n)
+            return both[:, : self.n], both[:, self.n :]
+        keys = distinct(rng, (batch,), self.cfg.n_keys, self.n)
+        return keys, self.value0 + distinct(rng, (batch,), self.cfg.n_values, self.n)
 
     def generate(
         self, rng: np.random.Generator, batch: int, mixed: bool = True
     ) -> tuple[np.ndarray, np.ndarray, dict]:
-        keys = distinct(rng, (batch,), self.cfg.n_keys, self.n)
-        values = self.value0 + distinct(rng, (batch,), self.cfg.n_values, self.n)
+        keys, values = self.symbols(rng, batch)
         counts = self.counts(rng, batch, mixed)
         tokens = np.empty((batch, self.length), dtype=np.int64)
         targets, order = np.full((2, batch, self.q), -1, dtype=np.int64)
@@ -280,6 +294,8 @@ class _Recall(_Pairs):
         special = self.pad_name(tok)
         if special:
             return special
+        if self.shared:
+            return f"t{tok}"
         return f"k{tok}" if tok < self.value0 else f"v{tok - self.value0}"
 
 

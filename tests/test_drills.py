@@ -47,6 +47,8 @@ SETTINGS = (
             {**SMALL["recall"], "min_pairs": 3, "query_sampling": "replacement"}, id="recall-mixed-repl"
         ),
         pytest.param({**SMALL["noisy_recall"], "min_pairs": 3}, id="noisy-mixed"),
+        pytest.param({**SMALL["recall"], "pools": "shared"}, id="recall-shared"),
+        pytest.param({**SMALL["recall"], "pools": "shared", "min_pairs": 2}, id="recall-shared-mixed"),
     ]
 )
 MIXED = [p for p in SETTINGS if "mixed" in p.id]
@@ -124,11 +126,22 @@ def test_noisy_recall_first_token_alone_leaves_as_many_candidates_as_the_look_al
 # ----------------------------------------------------------------------------- loss mask
 
 
+def value_places(drill: Drill, words: list[str]) -> list[int]:
+    """Positions of the values in a rendered sequence, from the layout alone: every word after
+    the separator (and, before it, after the padding) that ends a pair (``k v`` or ``p s v ~..``)."""
+    sep = words.index("|")
+    start = next(i for i, w in enumerate(words) if w != "_")
+    if drill.cfg.kind == "recall":
+        return list(range(start + 1, sep, 2)) + list(range(sep + 2, len(words), 2))
+    block = 3 + drill.cfg.filler_len
+    return list(range(start + 2, sep, block)) + list(range(sep + 3, len(words), 3))
+
+
 def recall_answers_by_layout(drill: Drill, row: list[int]) -> set[int]:
     """Answer targets found from the rendering alone: the query values after the separator."""
     words = drill.describe(np.asarray(row)).split()
     sep = words.index("|")
-    return {p - 1 for p in range(sep + 1, len(words)) if words[p].startswith("v")}
+    return {p - 1 for p in value_places(drill, words) if p > sep}
 
 
 def check_induction_mask(row: list[int], targets: list[int], m: int) -> None:
@@ -208,7 +221,7 @@ def blind_guesses(drill: Drill, tokens: np.ndarray, mask: np.ndarray, rng: np.ra
             pools = [[v for v in span if v not in row[start : t + 1]] for t in targets]
         else:
             words = drill.describe(np.asarray(row)).split()
-            values = [row[p] for p in range(words.index("|")) if words[p].startswith("v")]
+            values = [row[p] for p in value_places(drill, words) if p < words.index("|")]
             pools = []
             for j, _t in enumerate(targets):
                 round_start = 0 if cfg.query_sampling == "permutation" else j - j % len(values)
@@ -240,7 +253,7 @@ def test_copy_level_matches_the_closed_form_and_a_simulated_blind_guesser(settin
 def pairs_in(drill: Drill, row) -> int:
     """Pairs in a rendered sequence: the values before the separator."""
     words = drill.describe(np.asarray(row)).split()
-    return sum(w.startswith("v") for w in words[: words.index("|")])
+    return sum(p < words.index("|") for p in value_places(drill, words))
 
 
 def training_closed_form(cfg: DrillConfig) -> float:
@@ -312,6 +325,21 @@ def test_a_shorter_sequence_is_padded_in_front_and_otherwise_a_whole_sequence(se
         assert m.sum() == q and not m[:pads].any()
     # the held-out set is the fixed drill's: same sequences, no padding
     assert np.array_equal(drill.held_out(32)[0], full.held_out(32)[0])
+
+
+def test_shared_pools_draw_keys_and_values_as_distinct_symbols_of_one_pool():
+    drill = Drill.from_dict({**SMALL["recall"], "pools": "shared"})
+    assert drill.vocab_size == SMALL["recall"]["n_keys"] + 1  # the pool and the separator
+    tokens, _ = drill.batch(0, 200)
+    as_key, as_value = set(), set()
+    for row in tokens.tolist():
+        words = drill.describe(np.asarray(row)).split()
+        values = [row[p] for p in value_places(drill, words) if p < words.index("|")]
+        keys = [row[p - 1] for p in value_places(drill, words) if p < words.index("|")]
+        assert len(set(keys) | set(values)) == 2 * drill.cfg.n_pairs  # 2n distinct symbols
+        as_key |= set(keys)
+        as_value |= set(values)
+    assert as_key == as_value == set(range(SMALL["recall"]["n_keys"]))  # every symbol plays both roles
 
 
 def test_min_pairs_equal_to_n_pairs_gives_the_fixed_drill():
@@ -414,6 +442,8 @@ def test_describe_renders_one_word_per_token():
         ({"kind": "recall", "n_values": 4}, "n_values"),
         ({"kind": "recall", "n_queries": 9}, "n_queries"),
         ({"kind": "recall", "min_pairs": 0}, "min_pairs"),
+        ({"kind": "recall", "pools": "mixed"}, "pools"),
+        ({"kind": "recall", "pools": "shared", "n_keys": 15}, "n_keys"),
         ({"kind": "recall", "min_pairs": 9}, "min_pairs"),
         ({"kind": "noisy_recall", "min_pairs": 3}, "min_pairs"),
         ({"kind": "noisy_recall", "lookalikes": 2}, "lookalikes"),

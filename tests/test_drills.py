@@ -38,8 +38,20 @@ SETTINGS = (
         ),
         pytest.param({**SMALL["recall"], "query_sampling": "cycles", "n_queries": 15}, id="recall-cycles"),
         pytest.param({**SMALL["noisy_recall"], "query_sampling": "replacement"}, id="noisy-replacement"),
+        pytest.param({**SMALL["recall"], "min_pairs": 1}, id="recall-mixed"),
+        pytest.param(
+            {**SMALL["recall"], "min_pairs": 2, "query_sampling": "cycles", "n_queries": 9},
+            id="recall-mixed-cycles",
+        ),
+        pytest.param(
+            {**SMALL["recall"], "min_pairs": 3, "query_sampling": "replacement"}, id="recall-mixed-repl"
+        ),
+        pytest.param({**SMALL["noisy_recall"], "min_pairs": 3}, id="noisy-mixed"),
+        pytest.param({**SMALL["recall"], "pools": "shared"}, id="recall-shared"),
+        pytest.param({**SMALL["recall"], "pools": "shared", "min_pairs": 2}, id="recall-shared-mixed"),
     ]
 )
+MIXED = [p for p in SETTINGS if "mixed" in p.id]
 
 
 def harmonic(n: int) -> float:
@@ -114,11 +126,22 @@ def test_noisy_recall_first_token_alone_leaves_as_many_candidates_as_the_look_al
 # ----------------------------------------------------------------------------- loss mask
 
 
+def value_places(drill: Drill, words: list[str]) -> list[int]:
+    """Positions of the values in a rendered sequence, from the layout alone: every word after
+    the separator (and, before it, after the padding) that ends a pair (``k v`` or ``p s v ~..``)."""
+    sep = words.index("|")
+    start = next(i for i, w in enumerate(words) if w != "_")
+    if drill.cfg.kind == "recall":
+        return list(range(start + 1, sep, 2)) + list(range(sep + 2, len(words), 2))
+    block = 3 + drill.cfg.filler_len
+    return list(range(start + 2, sep, block)) + list(range(sep + 3, len(words), 3))
+
+
 def recall_answers_by_layout(drill: Drill, row: list[int]) -> set[int]:
     """Answer targets found from the rendering alone: the query values after the separator."""
     words = drill.describe(np.asarray(row)).split()
     sep = words.index("|")
-    return {p - 1 for p in range(sep + 1, len(words)) if words[p].startswith("v")}
+    return {p - 1 for p in value_places(drill, words) if p > sep}
 
 
 def check_induction_mask(row: list[int], targets: list[int], m: int) -> None:
@@ -144,7 +167,9 @@ def test_the_loss_mask_covers_exactly_the_answer_positions(settings):
             assert set(answer_targets(m)) == recall_answers_by_layout(drill, row)
     everything = Drill.from_dict({**settings, "loss_on": "all"})
     all_tokens, all_mask = everything.batch(2, 32)
-    assert np.array_equal(all_tokens, tokens) and all_mask.all()
+    assert np.array_equal(all_tokens, tokens)
+    for row, m in zip(all_tokens, all_mask):  # every target but the padding of a shorter sequence
+        assert m.tolist() == [w != "_" for w in drill.describe(row).split()[1:]]
     _, held_mask = everything.held_out(16)  # held-out accuracy is on answers, whatever the loss
     assert np.array_equal(held_mask, drill.held_out(16)[1])
     assert expected_answers(drill) * 16 == held_mask.sum()
@@ -196,10 +221,10 @@ def blind_guesses(drill: Drill, tokens: np.ndarray, mask: np.ndarray, rng: np.ra
             pools = [[v for v in span if v not in row[start : t + 1]] for t in targets]
         else:
             words = drill.describe(np.asarray(row)).split()
-            values = [row[p] for p in range(words.index("|")) if words[p].startswith("v")]
+            values = [row[p] for p in value_places(drill, words) if p < words.index("|")]
             pools = []
             for j, _t in enumerate(targets):
-                round_start = 0 if cfg.query_sampling == "permutation" else j - j % cfg.n_pairs
+                round_start = 0 if cfg.query_sampling == "permutation" else j - j % len(values)
                 asked = (
                     []
                     if cfg.query_sampling == "replacement"
@@ -220,6 +245,109 @@ def test_copy_level_matches_the_closed_form_and_a_simulated_blind_guesser(settin
     n = int(mask.sum())
     se = math.sqrt(drill.copy_level * (1 - drill.copy_level) / n)  # binomial standard error
     assert abs(acc - drill.copy_level) < 3 * se, (acc, drill.copy_level, se)
+
+
+# ----------------------------------------------------------------------------- mixed pair counts
+
+
+def pairs_in(drill: Drill, row) -> int:
+    """Pairs in a rendered sequence: the values before the separator."""
+    words = drill.describe(np.asarray(row)).split()
+    return sum(p < words.index("|") for p in value_places(drill, words))
+
+
+def training_closed_form(cfg: DrillConfig) -> float:
+    """Copy level of training sequences whose pair count m is uniform over min_pairs..n_pairs (in
+    steps of the look-alike group): the m-pair closed form weighted by the answers a sequence holds
+    (q, at most m under permutation)."""
+    step = cfg.lookalikes + 1 if cfg.kind == "noisy_recall" else 1
+    levels, answers = [], []
+    for m in range(cfg.min_pairs, cfg.n_pairs + 1, step):
+        q = min(cfg.n_queries, m) if cfg.query_sampling == "permutation" else cfg.n_queries
+        levels.append(
+            closed_form(DrillConfig(kind="recall", n_pairs=m, n_queries=q, query_sampling=cfg.query_sampling))
+        )
+        answers.append(q)
+    return float(np.dot(levels, answers) / sum(answers))
+
+
+def test_training_copy_level_of_one_to_eight_pairs_by_hand():
+    # m pairs, m permuted queries: the blind guesser scores H_m / m on each of m answers, so the level
+    # is sum_m H_m / sum_m m = ((n + 1) H_n - n) / (n (n + 1) / 2) for m = 1..n (sum of harmonic
+    # numbers: Graham, Knuth & Patashnik, Concrete Mathematics, eq. 2.36, from memory); n = 8, H_8 = 761/280.
+    drill = Drill.from_dict({"kind": "recall", "n_pairs": 8, "n_queries": 8, "min_pairs": 1})
+    assert drill.training_copy_level == pytest.approx((9 * 761 / 280 - 8) / 36, abs=1e-12)
+    assert drill.copy_level == pytest.approx(761 / 280 / 8, abs=1e-12)  # held out: always 8 pairs
+
+
+@pytest.mark.parametrize("settings", MIXED)
+def test_training_copy_level_matches_the_closed_form_and_a_simulated_blind_guesser(settings):
+    drill = Drill.from_dict(settings)
+    level = training_closed_form(drill.cfg)
+    assert drill.training_copy_level == pytest.approx(level, abs=1e-12)
+    batches = [drill.batch(s, 100) for s in range(15)]
+    tokens, mask = np.concatenate([b[0] for b in batches]), np.concatenate([b[1] for b in batches])
+    acc = accuracy(blind_guesses(drill, tokens, mask, np.random.default_rng(2)), tokens, mask)
+    se = math.sqrt(level * (1 - level) / mask.sum())  # binomial standard error
+    assert abs(acc - level) < 3 * se, (acc, level, se)
+
+
+@pytest.mark.parametrize("settings", MIXED)
+def test_pair_counts_are_uniform_over_the_allowed_counts_and_held_out_holds_all(settings):
+    drill = Drill.from_dict(settings)
+    cfg = drill.cfg
+    allowed = list(
+        range(cfg.min_pairs, cfg.n_pairs + 1, cfg.lookalikes + 1 if cfg.kind == "noisy_recall" else 1)
+    )
+    counts = [pairs_in(drill, row) for s in range(20) for row in drill.batch(s, 100)[0]]
+    assert sorted(set(counts)) == allowed
+    p = 1 / len(allowed)
+    for m in allowed:  # each count's frequency within 4 binomial standard errors of uniform
+        assert abs(counts.count(m) / len(counts) - p) < 4 * math.sqrt(p * (1 - p) / len(counts))
+    assert {pairs_in(drill, row) for row in drill.held_out(64)[0]} == {cfg.n_pairs}
+
+
+@pytest.mark.parametrize("settings", MIXED)
+def test_a_shorter_sequence_is_padded_in_front_and_otherwise_a_whole_sequence(settings):
+    drill = Drill.from_dict(settings)
+    full = Drill.from_dict({**settings, "min_pairs": None})
+    assert drill.vocab_size == full.vocab_size + 1 and drill.length == full.length
+    tokens, mask = drill.batch(5, 64)
+    for row, m in zip(tokens, mask):
+        words = drill.describe(row).split()
+        pads = next(i for i, w in enumerate(words) if w != "_")
+        assert "_" not in words[pads:]  # padding only in front
+        n = pairs_in(drill, row)
+        q = min(drill.cfg.n_queries, n) if drill.cfg.query_sampling == "permutation" else drill.cfg.n_queries
+        key_len = KEY_LEN[drill.cfg.kind]
+        block = 2 if key_len == 1 else 3 + drill.cfg.filler_len
+        assert len(words) - pads == n * block + 1 + (key_len + 1) * q  # pairs, separator, queries
+        assert m.sum() == q and not m[:pads].any()
+    # the held-out set is the fixed drill's: same sequences, no padding
+    assert np.array_equal(drill.held_out(32)[0], full.held_out(32)[0])
+
+
+def test_shared_pools_draw_keys_and_values_as_distinct_symbols_of_one_pool():
+    drill = Drill.from_dict({**SMALL["recall"], "pools": "shared"})
+    assert drill.vocab_size == SMALL["recall"]["n_keys"] + 1  # the pool and the separator
+    tokens, _ = drill.batch(0, 200)
+    as_key, as_value = set(), set()
+    for row in tokens.tolist():
+        words = drill.describe(np.asarray(row)).split()
+        values = [row[p] for p in value_places(drill, words) if p < words.index("|")]
+        keys = [row[p - 1] for p in value_places(drill, words) if p < words.index("|")]
+        assert len(set(keys) | set(values)) == 2 * drill.cfg.n_pairs  # 2n distinct symbols
+        as_key |= set(keys)
+        as_value |= set(values)
+    assert as_key == as_value == set(range(SMALL["recall"]["n_keys"]))  # every symbol plays both roles
+
+
+def test_min_pairs_equal_to_n_pairs_gives_the_fixed_drill():
+    fixed = Drill.from_dict({"kind": "recall"})
+    same = Drill.from_dict({"kind": "recall", "min_pairs": 8})
+    assert same.vocab_size == fixed.vocab_size and same.training_copy_level == fixed.copy_level
+    for a, b in zip(fixed.batch(3, 32), same.batch(3, 32)):
+        assert np.array_equal(a, b)
 
 
 # ----------------------------------------------------------------------------- hand-built lookup model
@@ -313,6 +441,11 @@ def test_describe_renders_one_word_per_token():
         ({"kind": "recall", "n_keys": 4}, "n_keys"),
         ({"kind": "recall", "n_values": 4}, "n_values"),
         ({"kind": "recall", "n_queries": 9}, "n_queries"),
+        ({"kind": "recall", "min_pairs": 0}, "min_pairs"),
+        ({"kind": "recall", "pools": "mixed"}, "pools"),
+        ({"kind": "recall", "pools": "shared", "n_keys": 15}, "n_keys"),
+        ({"kind": "recall", "min_pairs": 9}, "min_pairs"),
+        ({"kind": "noisy_recall", "min_pairs": 3}, "min_pairs"),
         ({"kind": "noisy_recall", "lookalikes": 2}, "lookalikes"),
         ({"kind": "noisy_recall", "filler_len": -1}, "filler_len"),
         ({"kind": "noisy_recall", "n_suffixes": 1}, "n_suffixes"),

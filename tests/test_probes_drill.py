@@ -94,6 +94,65 @@ def test_shares_of_a_real_decoder_are_bounded_and_sum_to_one(block):
     assert 0.0 <= drill_accuracy(model, drill, 64) <= 1.0
 
 
+def row_sum_over_abs_sum(block: nn.Module, model: nn.Module, items: list[dict]) -> torch.Tensor:
+    """``sum_k A_k / sum_k |A_k|`` per head at every answer's query position, averaged over the
+    answers: read from the block's own ``attention_weights`` on its captured input."""
+    seen = []
+    handle = block.register_forward_pre_hook(lambda module, args: seen.append(args[0].detach()))
+    with torch.no_grad():
+        model(torch.tensor([it["tokens"][:-1] for it in items]))
+    handle.remove()
+    with torch.no_grad():
+        w = block.attention_weights(seen[0]).double()  # [b, heads, t, t]
+    per_answer = [
+        w[b, :, t, :].sum(-1) / w[b, :, t, :].abs().sum(-1)
+        for b, it in enumerate(items)
+        for t in it["answer_positions"]
+    ]
+    return torch.stack(per_answer).mean(0)
+
+
+BLOCKS = {
+    "standard": lambda i: StandardAttention(32, head_dim=8),
+    # lambda fixed at 0.8 and the query/key maps scaled up so the two softmax maps differ: the
+    # difference map then has negative entries
+    "differential": lambda i: DifferentialAttention(32, head_dim=8, lambda_mode="fixed", lambda_init=0.8),
+}
+
+
+@pytest.mark.parametrize("name", list(BLOCKS))
+def test_per_head_signed_shares_add_up_to_the_rows_signed_mass(name):
+    drill = Drill.from_dict(SETTINGS["noisy_recall"])
+    model = Decoder(drill.vocab_size, 32, 1, drill.length - 1, BLOCKS[name])
+    with torch.no_grad():
+        for proj in (model.blocks[0].attention.q_proj, model.blocks[0].attention.k_proj):
+            proj.weight.mul_(40.0)
+    items = drill.items(12)
+    out = drill_attention(model, items, "cpu")
+    attention = model.blocks[0].attention
+    expected = row_sum_over_abs_sum(attention, model, items)
+    for h in range(len(expected)):
+        signed = [
+            out[f"drill_attention/layer0/head{h}/{k}_signed"]
+            for k in ("pair", "lookalike", "filler", "other")
+        ]
+        shares = [
+            out[f"drill_attention/layer0/head{h}/{k}_share"] for k in ("pair", "lookalike", "filler", "other")
+        ]
+        assert sum(signed) == pytest.approx(float(expected[h]), abs=1e-9)
+        if name == "standard":
+            # softmax rows are non-negative (its definition), so signed and absolute shares agree
+            assert signed == pytest.approx(shares, abs=1e-12)
+            assert sum(signed) == pytest.approx(1.0, abs=1e-9)
+        else:
+            # A1 - lambda A2, two softmax rows each summing to 1, sums to 1 - lambda = 0.2 (published
+            # Eq. 1) while its absolute mass exceeds that where entries are negative
+            assert 0.0 < sum(signed) < 0.99 and min(signed) < max(signed)
+    for share in ("pair", "lookalike", "filler", "other"):
+        per_head = [out[f"drill_attention/layer0/head{h}/{share}_share"] for h in range(len(expected))]
+        assert out[f"drill_attention/layer0/{share}_share"] == pytest.approx(sum(per_head) / len(per_head))
+
+
 def test_a_kind_without_lookalikes_or_filler_reports_zero_for_them():
     drill = Drill.from_dict(SETTINGS["recall"])
     model = Decoder(drill.vocab_size, 32, 1, drill.length - 1, lambda i: StandardAttention(32, head_dim=8))
@@ -133,10 +192,20 @@ def test_a_signed_two_head_map_gives_the_shares_worked_out_by_hand():
         "spans": [{"pair": [1, 3], "lookalike": [[3, 4]], "filler": [[0, 1]]}],
     }
     out = drill_attention(FixedModel(), [item, item])
-    # head 0: |row| sums to 1.0 -> pair 0.5, look-alike 0.3, filler 0.1, other 0.1; head 1: other 1.0.
-    expected = {"pair": 0.25, "lookalike": 0.15, "filler": 0.05, "other": 0.55}
-    for name, value in expected.items():
-        assert out[f"drill_attention/layer0/{name}_share"] == pytest.approx(value)
+    # By hand. Head 0's row [0.1, -0.2, 0.3, -0.3, 0.1] has |row| sum 1.0: keys 1-2 pair, 3 look-alike,
+    # 0 filler, 4 other. Shares |A|: pair 0.5, look-alike 0.3, filler 0.1, other 0.1; signed A:
+    # pair -0.2 + 0.3 = 0.1, look-alike -0.3, filler 0.1, other 0.1. Head 1's row puts 2.0 on key 4:
+    # other 1.0 both ways. The layer figures are the two heads' means.
+    heads = {
+        0: {"pair": (0.5, 0.1), "lookalike": (0.3, -0.3), "filler": (0.1, 0.1), "other": (0.1, 0.1)},
+        1: {"pair": (0.0, 0.0), "lookalike": (0.0, 0.0), "filler": (0.0, 0.0), "other": (1.0, 1.0)},
+    }
+    layer = {"pair": (0.25, 0.05), "lookalike": (0.15, -0.15), "filler": (0.05, 0.05), "other": (0.55, 0.55)}
+    for prefix, expected in [("", layer)] + [(f"head{h}/", heads[h]) for h in heads]:
+        for name, (share, signed) in expected.items():
+            assert out[f"drill_attention/layer0/{prefix}{name}_share"] == pytest.approx(share, abs=1e-7)
+            assert out[f"drill_attention/layer0/{prefix}{name}_signed"] == pytest.approx(signed, abs=1e-7)
+    assert not any("head2" in key for key in out)  # one key set per head the block has
 
 
 def test_items_without_spans_are_refused():

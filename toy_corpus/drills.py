@@ -35,6 +35,7 @@ import numpy as np
 
 DRILL_KINDS = ("recall", "noisy_recall", "induction")
 QUERY_SAMPLINGS = ("permutation", "replacement", "cycles")
+POOLS = ("separate", "shared")
 LOSS_ON = ("answers", "all")
 HELD_OUT_SPAWN_KEY = 1
 
@@ -47,7 +48,9 @@ class DrillConfig:
     n_pairs: int = 8  # recall, noisy_recall: key/value pairs in the context
     n_keys: int = 16  # recall: key symbols; noisy_recall: first-token symbols
     n_values: int = 16  # recall, noisy_recall: value symbols
+    pools: str = "separate"  # recall: "separate" key and value symbols, or one "shared" pool of n_keys
     n_queries: int = 8  # recall, noisy_recall: queries after the separator
+    min_pairs: int | None = None  # recall, noisy_recall: training sequences hold min_pairs..n_pairs pairs
     query_sampling: str = "permutation"  # permutation | replacement | cycles
     filler_len: int = 2  # noisy_recall: filler tokens after every pair
     n_filler: int = 16  # noisy_recall: filler symbols
@@ -62,6 +65,7 @@ class DrillConfig:
         _check_choice("kind", self.kind, DRILL_KINDS)
         _check_choice("loss_on", self.loss_on, LOSS_ON)
         _check_choice("query_sampling", self.query_sampling, QUERY_SAMPLINGS)
+        _check_choice("pools", self.pools, POOLS)
         _check_int("seed", self.seed, 0)
         for name in (
             "n_pairs",
@@ -76,6 +80,8 @@ class DrillConfig:
         ):
             _check_int(name, getattr(self, name), 1)
         _check_int("filler_len", self.filler_len, 0)
+        if self.min_pairs is not None:
+            _check_int("min_pairs", self.min_pairs, 1)
         _check_int("lookalikes", self.lookalikes, 0)
         if self.kind in ("recall", "noisy_recall"):
             self._check_recall()
@@ -87,8 +93,15 @@ class DrillConfig:
     def _check_recall(self) -> None:
         n = self.n_pairs
         _check_int("n_values", self.n_values, n, f"data.n_pairs={n} (values are distinct)")
-        if self.kind == "recall":
+        if self.kind == "recall" and self.pools == "shared":
+            _check_int("n_keys", self.n_keys, 2 * n, f"2 * data.n_pairs={2 * n} (keys and values distinct)")
+        elif self.kind == "recall":
             _check_int("n_keys", self.n_keys, n, f"data.n_pairs={n} (keys are distinct)")
+        if self.min_pairs is not None and self.min_pairs > n:
+            raise ValueError(
+                f"data.min_pairs={self.min_pairs}: must be <= data.n_pairs={n}; allowed: null (every "
+                f"sequence holds n_pairs) or 1..{n}"
+            )
         if self.query_sampling == "permutation" and self.n_queries > n:
             raise ValueError(
                 f"data.n_queries={self.n_queries}: must be <= data.n_pairs={n} under "
@@ -102,6 +115,11 @@ class DrillConfig:
             raise ValueError(
                 f"data.lookalikes={self.lookalikes}: lookalikes + 1 must divide data.n_pairs="
                 f"{self.n_pairs}; allowed: {[d - 1 for d in range(1, n + 1) if n % d == 0]}"
+            )
+        if self.min_pairs is not None and self.min_pairs % g:
+            raise ValueError(
+                f"data.min_pairs={self.min_pairs}: lookalikes + 1 = {g} must divide it (whole groups); "
+                f"allowed: null or {', '.join(str(k) for k in range(g, n + 1, g))}"
             )
         _check_int(
             "n_keys",
@@ -170,91 +188,199 @@ def excluding(
 # ----------------------------------------------------------------------------- the three kinds
 
 
-class _Recall:
-    """``k1 v1 ... kn vn | k v k v ...``: keys ``[0, n_keys)``, values after them, then the separator."""
+def pair_counts(rng: np.random.Generator, batch: int, low: int, high: int, step: int) -> np.ndarray:
+    """Pairs per sequence, uniform over ``low, low + step, ..., high`` (``[batch]``)."""
+    return low + step * rng.integers(0, (high - low) // step + 1, size=batch)
+
+
+def answer_targets(targets: np.ndarray) -> list[list[int]]:
+    """Per row, the answer targets in order (``-1`` marks an unused query slot)."""
+    return [[int(t) for t in row if t >= 0] for row in targets]
+
+
+class _Pairs:
+    """What recall and noisy_recall share: the layout length, the mixed pair counts of training
+    sequences (``min_pairs``..``n_pairs``; the held-out set always holds ``n_pairs``), the padding
+    symbol ``_`` that fills the front of a shorter sequence, and the copy levels."""
+
+    key_len = 1
+    step = 1  # pair counts move in whole look-alike groups
+
+    def setup(self, cfg: DrillConfig, symbols: int, block: int) -> None:
+        self.cfg = cfg
+        self.n, self.q, self.block = cfg.n_pairs, cfg.n_queries, block
+        self.low = self.n if cfg.min_pairs is None else cfg.min_pairs
+        self.mixed = self.low < self.n
+        self.sep = symbols
+        self.pad = symbols + 1 if self.mixed else None
+        self.vocab_size = symbols + 1 + int(self.mixed)
+        self.length = self.used(self.n)
+        self.copy_level = elimination_level(self.n, self.q, cfg.query_sampling)
+        counts = range(self.low, self.n + 1, self.step)
+        guessed = [
+            self.queries(m) * elimination_level(m, self.queries(m), cfg.query_sampling) for m in counts
+        ]
+        self.training_copy_level = sum(guessed) / sum(self.queries(m) for m in counts)
+
+    def queries(self, m: int) -> int:
+        """Queries of a sequence with ``m`` pairs: ``n_queries``, at most ``m`` under permutation."""
+        return min(self.q, m) if self.cfg.query_sampling == "permutation" else self.q
+
+    def used(self, m: int) -> int:
+        """Tokens a sequence with ``m`` pairs fills (the rest of the fixed length is padding)."""
+        return m * self.block + 1 + (self.key_len + 1) * self.queries(m)
+
+    def counts(self, rng: np.random.Generator, batch: int, mixed: bool) -> np.ndarray:
+        if not (mixed and self.mixed):
+            return np.full(batch, self.n, dtype=np.int64)
+        return pair_counts(rng, batch, self.low, self.n, self.step)
+
+    def start(self, tokens: np.ndarray, rows: np.ndarray, m: int) -> int:
+        """Offset of a sequence with ``m`` pairs; pads the front of ``tokens[rows]``."""
+        start = self.length - self.used(m)
+        if start:
+            tokens[rows, :start] = self.pad
+        return start
+
+    def pad_name(self, tok: int) -> str | None:
+        return {self.sep: "|", self.pad: "_"}.get(tok)
+
+
+class _Recall(_Pairs):
+    """``k1 v1 ... kn vn | k v k v ...``: keys ``[0, n_keys)``, values after them, the separator,
+    then (when training sequences mix pair counts) the padding symbol."""
 
     def __init__(self, cfg: DrillConfig):
-        self.cfg = cfg
-        self.n, self.q = cfg.n_pairs, cfg.n_queries
-        self.value0 = cfg.n_keys
-        self.sep = cfg.n_keys + cfg.n_values
-        self.vocab_size = self.sep + 1
-        self.context = 2 * self.n
-        self.length = self.context + 1 + 2 * self.q
-        self.copy_level = elimination_level(self.n, self.q, cfg.query_sampling)
-        self.targets = self.context + 1 + 2 * np.arange(self.q)  # target t: tokens[t + 1] is a query value
+        self.shared = cfg.pools == "shared"
+        self.value0 = 0 if self.shared else cfg.n_keys
+        self.setup(cfg, cfg.n_keys if self.shared else cfg.n_keys + cfg.n_values, 2)
 
-    def generate(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, dict]:
+    def symbols(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray]:
+        """Keys and values ``[batch, n]``: distinct within each; with a shared pool, 2n distinct
+        symbols of one pool (the first n are the keys)."""
+        if self.shared:
+            both = distinct(rng, (batch,), self.cfg.n_keys, 2 * self.n)
+            return both[:, : self.n], both[:, self.n :]
         keys = distinct(rng, (batch,), self.cfg.n_keys, self.n)
-        values = self.value0 + distinct(rng, (batch,), self.cfg.n_values, self.n)
-        order = query_order(rng, batch, self.n, self.q, self.cfg.query_sampling)
+        return keys, self.value0 + distinct(rng, (batch,), self.cfg.n_values, self.n)
+
+    def generate(
+        self, rng: np.random.Generator, batch: int, mixed: bool = True
+    ) -> tuple[np.ndarray, np.ndarray, dict]:
+        keys, values = self.symbols(rng, batch)
+        counts = self.counts(rng, batch, mixed)
         tokens = np.empty((batch, self.length), dtype=np.int64)
-        tokens[:, 0 : self.context : 2] = keys
-        tokens[:, 1 : self.context : 2] = values
-        tokens[:, self.context] = self.sep
-        tokens[:, self.context + 1 :: 2] = np.take_along_axis(keys, order, axis=1)
-        tokens[:, self.context + 2 :: 2] = np.take_along_axis(values, order, axis=1)
-        return tokens, np.broadcast_to(self.targets, (batch, self.q)), {"order": order}
+        targets, order = np.full((2, batch, self.q), -1, dtype=np.int64)
+        offset = np.zeros(batch, dtype=np.int64)
+        for m in np.unique(counts):
+            rows, qm = np.flatnonzero(counts == m), self.queries(m)
+            o = query_order(rng, len(rows), m, qm, self.cfg.query_sampling)
+            s = offset[rows] = self.start(tokens, rows, m)
+            k, v = keys[rows, :m], values[rows, :m]
+            tokens[rows[:, None], s + np.arange(0, 2 * m, 2)] = k
+            tokens[rows[:, None], s + np.arange(1, 2 * m, 2)] = v
+            tokens[rows, s + 2 * m] = self.sep
+            asked = s + 2 * m + 1 + 2 * np.arange(qm)  # target t: tokens[t + 1] is a query value
+            tokens[rows[:, None], asked] = np.take_along_axis(k, o, axis=1)
+            tokens[rows[:, None], asked + 1] = np.take_along_axis(v, o, axis=1)
+            targets[rows, :qm], order[rows, :qm] = asked, o
+        return tokens, targets, {"order": order, "offset": offset}
 
     def spans(self, meta: dict, b: int, a: int) -> dict:
-        j = int(meta["order"][b, a])
-        return {"pair": [2 * j, 2 * j + 2], "lookalike": [], "filler": []}
+        j, s = int(meta["order"][b, a]), int(meta["offset"][b])
+        return {"pair": [s + 2 * j, s + 2 * j + 2], "lookalike": [], "filler": []}
 
     def name(self, tok: int) -> str:
-        if tok == self.sep:
-            return "|"
+        special = self.pad_name(tok)
+        if special:
+            return special
+        if self.shared:
+            return f"t{tok}"
         return f"k{tok}" if tok < self.value0 else f"v{tok - self.value0}"
 
 
-class _NoisyRecall:
-    """``p s v ~ ~ ... | p s v ...``: first tokens, second tokens, values, filler, separator."""
+class _NoisyRecall(_Pairs):
+    """``p s v ~ ~ ... | p s v ...``: first tokens, second tokens, values, filler, separator (and
+    the padding symbol when training sequences mix pair counts, in whole look-alike groups)."""
+
+    key_len = 2
 
     def __init__(self, cfg: DrillConfig):
-        self.cfg = cfg
-        self.n, self.q, self.f = cfg.n_pairs, cfg.n_queries, cfg.filler_len
-        self.g = cfg.lookalikes + 1
+        self.f = cfg.filler_len
+        self.g = self.step = cfg.lookalikes + 1
         self.suffix0 = cfg.n_keys
         self.value0 = self.suffix0 + cfg.n_suffixes
         self.filler0 = self.value0 + cfg.n_values
-        self.sep = self.filler0 + cfg.n_filler
-        self.vocab_size = self.sep + 1
-        self.block = 3 + self.f
-        self.context = self.n * self.block
-        self.length = self.context + 1 + 3 * self.q
-        self.copy_level = elimination_level(self.n, self.q, cfg.query_sampling)
-        self.targets = self.context + 2 + 3 * np.arange(self.q)
+        self.setup(cfg, self.filler0 + cfg.n_filler, 3 + cfg.filler_len)
 
-    def generate(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, dict]:
+    def keys(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """First tokens, second tokens and group ids ``[batch, n]``, pairs shuffled so look-alikes
+        need not sit side by side."""
         n, g = self.n, self.g
         groups = n // g
         first = np.repeat(distinct(rng, (batch,), self.cfg.n_keys, groups), g, axis=1)
         second = self.suffix0 + distinct(rng, (batch, groups), self.cfg.n_suffixes, g).reshape(batch, n)
         group = np.repeat(np.arange(groups)[None, :], batch, axis=0).repeat(g, axis=1)
-        shuffle = rng.random((batch, n)).argsort(axis=1)  # look-alikes need not sit side by side
-        first, second, group = (np.take_along_axis(a, shuffle, axis=1) for a in (first, second, group))
+        shuffle = rng.random((batch, n)).argsort(axis=1)
+        return tuple(np.take_along_axis(a, shuffle, axis=1) for a in (first, second, group))
+
+    def generate(
+        self, rng: np.random.Generator, batch: int, mixed: bool = True
+    ) -> tuple[np.ndarray, np.ndarray, dict]:
+        n = self.n
+        first, second, group = self.keys(rng, batch)
         values = self.value0 + distinct(rng, (batch,), self.cfg.n_values, n)
-        order = query_order(rng, batch, n, self.q, self.cfg.query_sampling)
+        counts = self.counts(rng, batch, mixed)
         tokens = np.empty((batch, self.length), dtype=np.int64)
-        blocks = tokens[:, : self.context].reshape(batch, n, self.block)
-        blocks[:, :, 0], blocks[:, :, 1], blocks[:, :, 2] = first, second, values
-        blocks[:, :, 3:] = self.filler0 + rng.integers(0, self.cfg.n_filler, size=(batch, n, self.f))
-        tokens[:, self.context] = self.sep
-        for k, part in enumerate((first, second, values)):
-            tokens[:, self.context + 1 + k :: 3] = np.take_along_axis(part, order, axis=1)
-        return tokens, np.broadcast_to(self.targets, (batch, self.q)), {"order": order, "group": group}
+        targets, order = np.full((2, batch, self.q), -1, dtype=np.int64)
+        kept, offset = np.full((batch, n), -1, dtype=np.int64), np.zeros(batch, dtype=np.int64)
+        placed = []
+        for m in np.unique(counts):
+            rows, qm = np.flatnonzero(counts == m), self.queries(m)
+            o = query_order(rng, len(rows), m, qm, self.cfg.query_sampling)
+            keep = np.argsort(group[rows] >= m // self.g, axis=1, kind="stable")[:, :m]  # whole groups
+            parts = [np.take_along_axis(a[rows], keep, axis=1) for a in (first, second, values, group)]
+            kept[rows, :m] = parts[3]
+            s = offset[rows] = self.start(tokens, rows, m)
+            targets[rows, :qm], order[rows, :qm] = self.place(tokens, rows, s, parts[:3], o), o
+            placed.append((rows, m, s))
+        filler = self.filler0 + rng.integers(0, self.cfg.n_filler, size=(batch, n, self.f))
+        for rows, m, s in placed:
+            for i in range(m):
+                cols = s + i * self.block + 3 + np.arange(self.f)
+                tokens[rows[:, None], cols] = filler[rows, i]
+        return tokens, targets, {"order": order, "group": kept, "offset": offset}
+
+    def place(self, tokens: np.ndarray, rows: np.ndarray, s: int, parts: list, o: np.ndarray) -> np.ndarray:
+        """Writes the pairs (filler comes later), the separator and the queries; returns the targets."""
+        m, qm = parts[0].shape[1], o.shape[1]
+        context = m * self.block
+        asked = s + context + 1 + 3 * np.arange(qm)
+        for k, part in enumerate(parts):
+            tokens[rows[:, None], s + np.arange(m) * self.block + k] = part
+            tokens[rows[:, None], asked + k] = np.take_along_axis(part, o, axis=1)
+        tokens[rows, s + context] = self.sep
+        return asked + 1  # target t: tokens[t + 1] is the query's value
 
     def spans(self, meta: dict, b: int, a: int) -> dict:
-        j = int(meta["order"][b, a])
-        same = np.flatnonzero(meta["group"][b] == meta["group"][b, j])
-        filler = [[i * self.block + 3, (i + 1) * self.block] for i in range(self.n)] if self.f else []
-        return {"pair": self._pair(j), "lookalike": [self._pair(i) for i in same if i != j], "filler": filler}
+        j, s = int(meta["order"][b, a]), int(meta["offset"][b])
+        groups = meta["group"][b]
+        same = np.flatnonzero(groups == groups[j])
+        m = int((groups >= 0).sum())
+        filler = [[s + i * self.block + 3, s + (i + 1) * self.block] for i in range(m)] if self.f else []
+        return {
+            "pair": self._pair(s, j),
+            "lookalike": [self._pair(s, i) for i in same if i != j],
+            "filler": filler,
+        }
 
-    def _pair(self, i: int) -> list[int]:
-        return [int(i) * self.block, int(i) * self.block + 3]
+    def _pair(self, s: int, i: int) -> list[int]:
+        return [s + int(i) * self.block, s + int(i) * self.block + 3]
 
     def name(self, tok: int) -> str:
-        if tok == self.sep:
-            return "|"
+        special = self.pad_name(tok)
+        if special:
+            return special
         for start, label in ((self.filler0, "~"), (self.value0, "v"), (self.suffix0, "s"), (0, "k")):
             if tok >= start:
                 return f"{label}{tok - start}"
@@ -267,9 +393,13 @@ class _Induction:
     def __init__(self, cfg: DrillConfig):
         self.cfg = cfg
         self.m, self.length, self.vocab_size = cfg.span_len, cfg.window, cfg.n_symbols
-        self.copy_level = float(np.mean([1.0 / (self.m - j) for j in range(1, self.m)]))
+        self.copy_level = self.training_copy_level = float(
+            np.mean([1.0 / (self.m - j) for j in range(1, self.m)])
+        )
 
-    def generate(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, dict]:
+    def generate(
+        self, rng: np.random.Generator, batch: int, mixed: bool = True
+    ) -> tuple[np.ndarray, np.ndarray, dict]:
         m = self.m
         span = distinct(rng, (batch,), self.vocab_size, m)
         tokens = excluding(rng, (batch, self.length), self.vocab_size, span)
@@ -307,6 +437,7 @@ class Drill:
         self.vocab_size: int = int(self._kind.vocab_size)
         self.length: int = int(self._kind.length)
         self.copy_level: float = float(self._kind.copy_level)
+        self.training_copy_level: float = float(self._kind.training_copy_level)
         self._held_out: dict[int, tuple[np.ndarray, np.ndarray, dict]] = {}
 
     @classmethod
@@ -322,12 +453,19 @@ class Drill:
     def config(self) -> dict[str, Any]:
         return asdict(self.cfg)
 
-    def _mask(self, targets: np.ndarray, loss_on: str) -> np.ndarray:
-        mask = np.zeros((targets.shape[0], self.length - 1), dtype=bool)
+    def _mask(self, tokens: np.ndarray, targets: np.ndarray, loss_on: str) -> np.ndarray:
+        """Answer targets (``-1`` marks an unused query slot of a shorter sequence) or, with
+        ``all``, every target that is not the padding of a shorter sequence."""
         if loss_on == "all":
-            mask[:] = True
-        else:
-            np.put_along_axis(mask, targets, True, axis=1)
+            pad = getattr(self._kind, "pad", None)
+            return (
+                np.ones((tokens.shape[0], self.length - 1), dtype=bool)
+                if pad is None
+                else tokens[:, 1:] != pad
+            )
+        mask = np.zeros((targets.shape[0], self.length - 1), dtype=bool)
+        rows, slots = np.nonzero(targets >= 0)
+        mask[rows, targets[rows, slots]] = True
         return mask
 
     def batch(self, step: int, batch_size: int) -> tuple[np.ndarray, np.ndarray]:
@@ -337,26 +475,25 @@ class Drill:
         tokens, targets, _ = self._kind.generate(
             np.random.default_rng([self.cfg.seed, int(step)]), int(batch_size)
         )
-        return tokens, self._mask(targets, self.cfg.loss_on)
+        return tokens, self._mask(tokens, targets, self.cfg.loss_on)
 
     def _held(self, n: int) -> tuple[np.ndarray, np.ndarray, dict]:
         _check_count("n", n, 1)
         if n not in self._held_out:
             seq = np.random.SeedSequence(self.cfg.seed, spawn_key=(HELD_OUT_SPAWN_KEY,))
-            self._held_out[n] = self._kind.generate(np.random.default_rng(seq), int(n))
+            self._held_out[n] = self._kind.generate(np.random.default_rng(seq), int(n), mixed=False)
         return self._held_out[n]
 
     def held_out(self, n: int) -> tuple[np.ndarray, np.ndarray]:
         """A fixed evaluation set; the mask is always the answer positions."""
         tokens, targets, _ = self._held(n)
-        return tokens.copy(), self._mask(targets, "answers")
+        return tokens.copy(), self._mask(tokens, targets, "answers")
 
     def items(self, n: int) -> list[dict]:
         """The held-out sequences as probe items (see the module docstring of ablate.probes.drill)."""
         tokens, targets, meta = self._held(n)
         out = []
-        for b in range(n):
-            t = [int(x) for x in targets[b]]
+        for b, t in enumerate(answer_targets(targets)):
             out.append(
                 {
                     "tokens": tokens[b].tolist(),

@@ -4,17 +4,26 @@
 ``toy_corpus.drills.accuracy`` on the answer positions.
 
 ``drill_attention``: for every answer of every item, the query position is the target index ``t``
-(the output at ``t`` predicts ``tokens[t + 1]``). Its attention row of layer ``i`` is bounded as in
-the retrieval attention probe (``scan.bounded_rows``: each head's ``|A|`` row divided by its sum,
-then the heads averaged), and split over the keys ``0..t`` into
+(the output at ``t`` predicts ``tokens[t + 1]``). Its attention row ``A`` in each head ``h`` of layer
+``i`` (the block's ``attention_weights``: for differential attention the difference map, whose
+entries can be negative) is split over the visible keys ``0..t`` into
 
-- ``pair_share``: keys in the asked key's pair (``spans["pair"]``),
-- ``lookalike_share``: keys in look-alike pairs (and not in the pair),
-- ``filler_share``: keys in filler (and in neither of the above),
-- ``other_share``: every other key.
+- ``pair``: keys in the asked key's pair (``spans["pair"]``),
+- ``lookalike``: keys in look-alike pairs (and not in the pair),
+- ``filler``: keys in filler (and in neither of the above),
+- ``other``: every other key,
 
-The four are in [0, 1] and sum to 1; means over all answers of all items, keys
-``drill_attention/layer{i}/{name}_share``. A kind without look-alikes or filler reports 0 for them.
+and read two ways, both divided by the row's absolute mass ``sum_k |A_k|``:
+
+- ``{name}_share`` = ``sum_{k in name} |A_k| / sum_k |A_k|``: in [0, 1], the four sum to 1 (the
+  retrieval attention probe's bounded rows, ``scan.bounded_rows``);
+- ``{name}_signed`` = ``sum_{k in name} A_k / sum_k |A_k|``: in [-1, 1]; equal to the share for a
+  map without negative entries (softmax); for a difference map a negative value means the head
+  subtracts more weight there than it adds.
+
+Means over all answers of all items, per head (``drill_attention/layer{i}/head{h}/{name}_share``,
+``.../{name}_signed``) and averaged over the heads of the layer (``drill_attention/layer{i}/
+{name}_share``, ``.../{name}_signed``). A kind without look-alikes or filler reports 0 for them.
 """
 
 from __future__ import annotations
@@ -65,11 +74,19 @@ def key_categories(item: dict, width: int) -> np.ndarray:
     return out
 
 
-def row_shares(row: np.ndarray, categories: np.ndarray, query: int) -> np.ndarray:
-    """Shares of one bounded row (keys ``0..query``; normalised again to sum 1) per category."""
-    visible = np.abs(row[: query + 1])
-    visible = visible / visible.sum()
-    return np.bincount(categories[: query + 1], weights=visible, minlength=len(SHARES))
+def head_shares(weights: np.ndarray, categories: np.ndarray, positions: Sequence[int]) -> np.ndarray:
+    """One item, one layer: ``weights`` ``[heads, T, T]``, ``categories`` ``[answers, T]``, the
+    answers' query positions -> ``[answers, heads, 2, 4]``: (share, signed) per category, each row
+    over its visible keys ``0..t`` divided by its absolute mass (module docstring)."""
+    at = np.asarray(positions, dtype=np.int64)
+    rows = weights[:, at, :]  # [heads, answers, T]
+    visible = np.arange(weights.shape[-1])[None, :] <= at[:, None]
+    rows = np.where(visible[None], rows, 0.0)
+    rows = rows / np.abs(rows).sum(-1, keepdims=True)
+    onehot = np.eye(len(SHARES))[categories]  # [answers, T, 4]
+    return np.stack(
+        [np.einsum("hak,akc->ahc", np.abs(rows), onehot), np.einsum("hak,akc->ahc", rows, onehot)], axis=2
+    )
 
 
 def check_drill_items(items: Sequence[dict]) -> None:
@@ -87,34 +104,38 @@ def check_drill_items(items: Sequence[dict]) -> None:
 
 
 def drill_attention(model: nn.Module, items: Sequence[dict], device="cpu") -> dict[str, float]:
-    """Mean pair / look-alike / filler / other share of each layer's bounded attention row at the
-    answers' query positions (module docstring)."""
+    """Pair / look-alike / filler / other shares (absolute and signed) of every head's attention
+    row at the answers' query positions, per head and head-averaged per layer (module docstring)."""
     check_drill_items(items)
     width = {len(it["tokens"]) for it in items}
     if len(width) != 1:
         raise ValueError(f"drill attention probe: items must share one length, got {sorted(width)}")
     modules = attention_modules(model)
-    totals, count = np.zeros((len(modules), len(SHARES))), 0
+    totals: list[np.ndarray | float] = [0.0] * len(modules)  # per layer: [heads, 2, 4] summed over answers
+    count = 0
     inputs = torch.as_tensor([it["tokens"][:-1] for it in items], dtype=torch.long)
     with evaluating(model), capture_attention_inputs(model) as captured:
         for start in range(0, len(items), BATCH):
             chunk = items[start : start + BATCH]
             model(inputs[start : start + BATCH].to(device))
-            rows = [
-                bounded_rows(m.attention_weights(x)).double().cpu().numpy() for m, x in zip(modules, captured)
-            ]
+            maps = [m.attention_weights(x).double().cpu().numpy() for m, x in zip(modules, captured)]
             for b, it in enumerate(chunk):
                 cats = key_categories(it, inputs.shape[1])
-                for a, t in enumerate(it["answer_positions"]):
-                    for layer, r in enumerate(rows):
-                        totals[layer] += row_shares(r[b, t], cats[a], int(t))
-                    count += 1
-    mean = totals / count
-    return {
-        f"drill_attention/layer{i}/{name}_share": float(mean[i, j])
-        for i in range(len(modules))
-        for j, name in enumerate(SHARES)
-    }
+                for layer, w in enumerate(maps):
+                    totals[layer] = totals[layer] + head_shares(w[b], cats, it["answer_positions"]).sum(0)
+                count += len(it["answer_positions"])
+    return share_names([t / count for t in totals])
+
+
+def share_names(means: list[np.ndarray]) -> dict[str, float]:
+    """``[heads, 2, 4]`` means per layer -> the flat keys: layer (head average) then each head."""
+    out: dict[str, float] = {}
+    for i, mean in enumerate(means):
+        for label, values in [("", mean.mean(0))] + [(f"head{h}/", mean[h]) for h in range(len(mean))]:
+            for j, name in enumerate(SHARES):
+                out[f"drill_attention/layer{i}/{label}{name}_share"] = float(values[0, j])
+                out[f"drill_attention/layer{i}/{label}{name}_signed"] = float(values[1, j])
+    return out
 
 
 DRILL_PROBES = ("drill_attention", "outliers")

@@ -16,7 +16,7 @@ entries can be negative) is split over the visible keys ``0..t`` into
 and read two ways, both divided by the row's absolute mass ``sum_k |A_k|``:
 
 - ``{name}_share`` = ``sum_{k in name} |A_k| / sum_k |A_k|``: in [0, 1], the four sum to 1 (the
-  retrieval attention probe's bounded rows, ``scan.bounded_rows``);
+  same normalisation as the retrieval probe's ``scan.bounded_rows``);
 - ``{name}_signed`` = ``sum_{k in name} A_k / sum_k |A_k|``: in [-1, 1]; equal to the share for a
   map without negative entries (softmax); for a difference map a negative value means the head
   subtracts more weight there than it adds.
@@ -39,7 +39,6 @@ from toy_corpus.drills import accuracy
 
 from .common import attention_modules, capture_attention_inputs, evaluating
 from .outliers import outlier_probe
-from .scan import bounded_rows
 from .suite import check_config
 
 SHARES = ("pair", "lookalike", "filler", "other")

@@ -139,7 +139,8 @@ def drill_text(v: Verdict) -> list[str]:
         if t.cell_sooner is not None:
             who, ref = _names(v)
             text += (
-                f"; {who} sooner in {t.cell_sooner} seeds, {ref} sooner in {t.reference_sooner}, "
+                f"; {who} sooner in {t.cell_sooner} seed{'' if t.cell_sooner == 1 else 's'}, "
+                f"{ref} sooner in {t.reference_sooner}, "
                 f"sign test p = {t.p:.2g}"
             )
         out.append(text + ".")

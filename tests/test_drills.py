@@ -4,14 +4,23 @@ and one-line refusals of bad config values."""
 
 from __future__ import annotations
 
+import itertools
 import math
 import time
+from dataclasses import replace
 
 import numpy as np
 import pytest
 import torch
 
-from toy_corpus.drills import DRILL_KINDS, Drill, DrillConfig, accuracy
+from toy_corpus.drills import (
+    DRILL_KINDS,
+    Drill,
+    DrillConfig,
+    accuracy,
+    elimination_level,
+    first_token_level,
+)
 
 # A small setting per kind, so brute-force loops stay quick; the defaults are checked too.
 SMALL = {
@@ -29,6 +38,8 @@ SMALL = {
     ),
     "induction": dict(kind="induction", span_len=5, window=24, n_symbols=16),
 }
+# The look-alike recipe's data (conf/data/noisy_recall.yaml): 2 first x 2 second tokens, 4 pairs.
+LOOKALIKE = dict(kind="noisy_recall", n_pairs=4, n_queries=4, n_keys=2, n_suffixes=2, filler_len=2)
 SETTINGS = (
     [pytest.param(SMALL[k], id=k) for k in DRILL_KINDS]
     + [pytest.param({"kind": k}, id=f"{k}-defaults") for k in DRILL_KINDS]
@@ -47,6 +58,10 @@ SETTINGS = (
             {**SMALL["recall"], "min_pairs": 3, "query_sampling": "replacement"}, id="recall-mixed-repl"
         ),
         pytest.param({**SMALL["noisy_recall"], "min_pairs": 3}, id="noisy-mixed"),
+        pytest.param(LOOKALIKE, id="noisy-lookalike-recipe"),
+        pytest.param(
+            {**SMALL["noisy_recall"], "query_sampling": "cycles", "n_queries": 8}, id="noisy-cycles"
+        ),
         pytest.param({**SMALL["recall"], "pools": "shared"}, id="recall-shared"),
         pytest.param({**SMALL["recall"], "pools": "shared", "min_pairs": 2}, id="recall-shared-mixed"),
     ]
@@ -184,13 +199,43 @@ def expected_answers(drill: Drill) -> int:
 
 def closed_form(cfg: DrillConfig) -> float:
     """Best query-blind accuracy: 1/n per replacement query; 1/(n - j) for the j-th query of a
-    permutation (elimination of values asked before); H_{m-1}/(m-1) for induction (by hand)."""
+    permutation (elimination of values asked before); H_{m-1}/(m-1) for induction (by hand);
+    noisy_recall: the first-token reader, by enumeration (``first_token_enumerated``)."""
     if cfg.kind == "induction":
         return harmonic(cfg.span_len - 1) / (cfg.span_len - 1)
+    if cfg.kind == "noisy_recall":
+        return first_token_enumerated(cfg.n_pairs, cfg.n_queries, cfg.lookalikes + 1, cfg.query_sampling)
     n, q = cfg.n_pairs, cfg.n_queries
     if cfg.query_sampling == "replacement":
         return 1.0 / n
     return sum(1.0 / (n - j % n) for j in range(q)) / q
+
+
+def first_token_enumerated(n: int, q: int, g: int, sampling: str) -> float:
+    """The first-token reader's mean score over every equally likely query order, enumerated (no
+    formula): keys 0..n-1 in groups of g; a query scores 1/(g - r), r its group's keys asked earlier
+    in the round (a round is the whole order under permutation, n queries under cycles)."""
+    if sampling == "replacement":
+        return 1.0 / g
+    rounds = [(q // n) * [n] + ([q % n] if q % n else []), [q]][sampling == "permutation"]
+    total = 0.0
+    for length in rounds:
+        orders = list(itertools.permutations(range(n), length))
+        scores = [1 / (g - sum(k // g == key // g for k in o[:j])) for o in orders for j, key in enumerate(o)]
+        total += math.fsum(scores) / len(orders)
+    return total / q
+
+
+def test_first_token_level_by_hand():
+    # g = 2, every key asked once: the first of a group scores 1/2, the second 1 -> 3/4 (= H_2 / 2).
+    assert Drill.from_dict(LOOKALIKE).copy_level == pytest.approx(0.75, abs=1e-12)
+    # 4 pairs in groups of 2, 2 permuted queries: the second query is in the first one's group with
+    # probability 1/3 (one of the 3 other keys), so (1/2 + (1/3 * 1 + 2/3 * 1/2)) / 2 = 7/12.
+    two = Drill.from_dict({**LOOKALIKE, "n_queries": 2})
+    assert two.copy_level == pytest.approx(7 / 12, abs=1e-12)
+    # it is never below the blind guesser's level (knowing the group only helps)
+    for g, n in ((2, 8), (3, 6), (4, 8)):
+        assert first_token_level(n, n, g, "permutation") >= elimination_level(n, n, "permutation")
 
 
 def test_closed_forms_match_the_harmonic_numbers():
@@ -210,7 +255,9 @@ def test_closed_forms_match_the_harmonic_numbers():
 def blind_guesses(drill: Drill, tokens: np.ndarray, mask: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """A query-blind guesser: at each answer it picks uniformly among the candidate values without
     reading the query key. Candidates: recall, the context's values minus (permutation/cycles) those
-    already answered in the current round; induction, the span's tokens the repeat has not shown."""
+    already answered in the current round; noisy_recall, the same among the pairs that share the
+    query's first token (it reads that one, not the second); induction, the span's tokens the repeat
+    has not shown."""
     cfg = drill.cfg
     pred = np.full(mask.shape, -1, dtype=np.int64)
     for b, (row, m) in enumerate(zip(tokens.tolist(), mask)):
@@ -221,10 +268,13 @@ def blind_guesses(drill: Drill, tokens: np.ndarray, mask: np.ndarray, rng: np.ra
             pools = [[v for v in span if v not in row[start : t + 1]] for t in targets]
         else:
             words = drill.describe(np.asarray(row)).split()
-            values = [row[p] for p in value_places(drill, words) if p < words.index("|")]
+            places = [p for p in value_places(drill, words) if p < words.index("|")]
             pools = []
-            for j, _t in enumerate(targets):
-                round_start = 0 if cfg.query_sampling == "permutation" else j - j % len(values)
+            for j, t in enumerate(targets):
+                # noisy_recall: read the query's first token (tokens[t - 1]), keep its group's values
+                reads = cfg.kind == "noisy_recall"
+                values = [row[p] for p in places if not reads or row[p - 2] == row[t - 1]]
+                round_start = 0 if cfg.query_sampling == "permutation" else j - j % len(places)
                 asked = (
                     []
                     if cfg.query_sampling == "replacement"
@@ -264,9 +314,7 @@ def training_closed_form(cfg: DrillConfig) -> float:
     levels, answers = [], []
     for m in range(cfg.min_pairs, cfg.n_pairs + 1, step):
         q = min(cfg.n_queries, m) if cfg.query_sampling == "permutation" else cfg.n_queries
-        levels.append(
-            closed_form(DrillConfig(kind="recall", n_pairs=m, n_queries=q, query_sampling=cfg.query_sampling))
-        )
+        levels.append(closed_form(replace(cfg, n_pairs=m, n_queries=q, min_pairs=None)))
         answers.append(q)
     return float(np.dot(levels, answers) / sum(answers))
 
@@ -449,7 +497,8 @@ def test_describe_renders_one_word_per_token():
         ({"kind": "noisy_recall", "lookalikes": 2}, "lookalikes"),
         ({"kind": "noisy_recall", "filler_len": -1}, "filler_len"),
         ({"kind": "noisy_recall", "n_suffixes": 1}, "n_suffixes"),
-        ({"kind": "noisy_recall", "lookalikes": 0, "n_keys": 4}, "n_keys"),
+        ({"kind": "noisy_recall", "lookalikes": 0}, "lookalikes"),
+        ({"kind": "noisy_recall", "lookalikes": 1, "n_keys": 3}, "n_keys"),
         ({"kind": "induction", "span_len": 1}, "span_len"),
         ({"kind": "induction", "span_len": 40}, "window"),
         ({"kind": "induction", "n_symbols": 8}, "n_symbols"),

@@ -16,18 +16,29 @@ A training batch for step ``s`` is a pure function of ``(seed, s)``: ``default_r
 The held-out set draws from ``SeedSequence(seed, spawn_key=(1,))``, a stream that no
 ``[seed, step]`` entropy reproduces (its assembled entropy has five words, training's two).
 
-Copy level = exact accuracy of the best guesser that does not read the query:
+Copy level = exact accuracy of the best guesser that does not read the query (for noisy_recall: that
+does not read the query's second token, below):
 
 - query sampling ``replacement``: the answer is uniform over the n distinct context values, so 1/n;
 - ``permutation`` (queries ask distinct keys): the guesser eliminates values already asked, so query
   j (from 0) scores 1/(n - j); mean over the q queries: (1/q) sum_{j<q} 1/(n - j) (= H_n / n for q = n);
 - ``cycles`` (back-to-back permutations of the n keys): query j scores 1/(n - (j mod n)); mean over q;
+- noisy_recall: a guesser that reads the query's first token knows its look-alike group of g =
+  lookalikes + 1 keys, and scores 1/(g - r) with r the group's keys already asked (permutation,
+  cycles), 1/g under replacement; r is hypergeometric, so the level has a closed form
+  (``first_token_level``). It is at least the blind level (knowing the group only helps), and it is
+  the level to beat: above it, the answer depends on the second token, the one that tells a key
+  from its look-alikes. A reader of the second token alone does as well only where second tokens
+  repeat across groups as often as first tokens repeat inside them (the look-alike recipe's setting,
+  2 first x 2 second tokens, is that symmetric case); with many second-token symbols it does better,
+  and that level is not computed.
 - induction: a guesser that knows which symbols form the span and which the repeat has already
   shown, but not their order, scores 1/(m - j) on continuation j = 1..m-1: H_{m-1} / (m - 1).
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
@@ -82,7 +93,13 @@ class DrillConfig:
         _check_int("filler_len", self.filler_len, 0)
         if self.min_pairs is not None:
             _check_int("min_pairs", self.min_pairs, 1)
-        _check_int("lookalikes", self.lookalikes, 0)
+        noisy = self.kind == "noisy_recall"
+        _check_int(
+            "lookalikes",
+            self.lookalikes,
+            int(noisy),
+            "one look-alike (else the first token finds the key)" if noisy else None,
+        )
         if self.kind in ("recall", "noisy_recall"):
             self._check_recall()
         if self.kind == "noisy_recall":
@@ -174,6 +191,22 @@ def elimination_level(n: int, q: int, sampling: str) -> float:
     return float(np.mean([1.0 / (n - (j % n)) for j in range(q)]))
 
 
+def first_token_level(n: int, q: int, g: int, sampling: str) -> float:
+    """Copy level of a guesser that reads the query's first token (so knows its look-alike group of
+    ``g`` keys) but not its second (module docstring): under replacement 1/g; under permutation query
+    j scores 1/(g - r), r the earlier queries in its group, hypergeometric over the j earlier keys
+    drawn from the other n - 1 (g - 1 of them in the group); cycles restart that count every n."""
+    if sampling == "replacement":
+        return 1.0 / g
+    total = 0.0
+    for j in range(q):
+        j = j % n
+        for r in range(min(j, g - 1) + 1):
+            ways = math.comb(g - 1, r) * math.comb(n - g, j - r) / math.comb(n - 1, j)
+            total += ways / (g - r)
+    return total / q
+
+
 def excluding(
     rng: np.random.Generator, shape: tuple[int, int], pool: int, excluded: np.ndarray
 ) -> np.ndarray:
@@ -215,12 +248,14 @@ class _Pairs:
         self.pad = symbols + 1 if self.mixed else None
         self.vocab_size = symbols + 1 + int(self.mixed)
         self.length = self.used(self.n)
-        self.copy_level = elimination_level(self.n, self.q, cfg.query_sampling)
+        self.copy_level = self.level(self.n, self.q)
         counts = range(self.low, self.n + 1, self.step)
-        guessed = [
-            self.queries(m) * elimination_level(m, self.queries(m), cfg.query_sampling) for m in counts
-        ]
+        guessed = [self.queries(m) * self.level(m, self.queries(m)) for m in counts]
         self.training_copy_level = sum(guessed) / sum(self.queries(m) for m in counts)
+
+    def level(self, m: int, q: int) -> float:
+        """Copy level of a sequence with ``m`` pairs and ``q`` queries."""
+        return elimination_level(m, q, self.cfg.query_sampling)
 
     def queries(self, m: int) -> int:
         """Queries of a sequence with ``m`` pairs: ``n_queries``, at most ``m`` under permutation."""
@@ -312,6 +347,10 @@ class _NoisyRecall(_Pairs):
         self.value0 = self.suffix0 + cfg.n_suffixes
         self.filler0 = self.value0 + cfg.n_values
         self.setup(cfg, self.filler0 + cfg.n_filler, 3 + cfg.filler_len)
+
+    def level(self, m: int, q: int) -> float:
+        """The first-token reader's level (``first_token_level``), not the blind guesser's."""
+        return first_token_level(m, q, self.g, self.cfg.query_sampling)
 
     def keys(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """First tokens, second tokens and group ids ``[batch, n]``, pairs shuffled so look-alikes

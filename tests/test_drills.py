@@ -226,6 +226,25 @@ def first_token_enumerated(n: int, q: int, g: int, sampling: str) -> float:
     return total / q
 
 
+def test_in_the_lookalike_setting_a_second_token_reader_scores_the_first_token_level():
+    # 2 first x 2 second tokens: each second token is shared by two keys, as each first token is,
+    # so the reader of either token alone sits at the copy level (DRILLS.md "Copy levels").
+    drill = Drill.from_dict(LOOKALIKE)
+    tokens, mask = drill.held_out(1500)
+    rng = np.random.default_rng(5)
+    hits = []
+    for row, m in zip(tokens.tolist(), mask):
+        words = drill.describe(np.asarray(row)).split()
+        places = [p for p in value_places(drill, words) if p < words.index("|")]
+        asked = []
+        for t in answer_targets(m):
+            pool = [row[p] for p in places if row[p - 1] == row[t] and row[p] not in asked]
+            hits.append(pool[rng.integers(len(pool))] == row[t + 1])
+            asked.append(row[t + 1])
+    se = math.sqrt(drill.copy_level * (1 - drill.copy_level) / len(hits))  # binomial standard error
+    assert abs(np.mean(hits) - drill.copy_level) < 3 * se, (np.mean(hits), drill.copy_level)
+
+
 def test_first_token_level_by_hand():
     # g = 2, every key asked once: the first of a group scores 1/2, the second 1 -> 3/4 (= H_2 / 2).
     assert Drill.from_dict(LOOKALIKE).copy_level == pytest.approx(0.75, abs=1e-12)

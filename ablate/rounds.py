@@ -58,10 +58,11 @@ def plan_total(verdicts: list, first_stage: list[int], resolution: float, cap: i
         elif max(values) == min(values):
             need, why = n0, "no spread in the first stage: no interval exists"
         else:
-            need = two_stage_total(values, resolution, cap)
+            need = two_stage_total(values, resolution, 2**62)
             why = f"first-stage SD {_sd(values):.3g}"
         total = max(total, min(cap, need))
-        lines.append(f"  {name}: {why}; needs {min(cap, need)} seeds")
+        capped = f" (the rule asks {need}; cap {cap})" if need > cap else ""
+        lines.append(f"  {name}: {why}; needs {min(cap, need)} seeds{capped}")
     return total, lines
 
 

@@ -101,6 +101,18 @@ def test_one_second_round_to_steins_total(tmp_path):
     assert saved.first_stage == [0, 1, 2] and saved.seeds == list(range(want)) and saved.rounds == 2
 
 
+def test_a_capped_total_says_what_the_rule_asked(tmp_path, capsys):
+    base = {0: 3.0, 1: 3.2, 2: 3.1}
+    other = {0: 2.9, 1: 3.3, 2: 3.05}
+    write_runs(tmp_path, {"attention=standard": base, "attention=differential": other})
+    grid = grid_record(tmp_path, [0, 1, 2], max_seeds=6, resolution=0.01)
+    records.write_grid(grid)
+    more_rounds(grid, ["-m", "seed=0,1,2"], lambda argv: None)
+    d = [other[s] - base[s] for s in range(3)]
+    asked = math.ceil((stats.t.ppf(0.975, 2) * np.std(d, ddof=1) / 0.01) ** 2)  # Stein (1945)
+    assert asked > 6 and f"needs 6 seeds (the rule asks {asked}; cap 6)" in capsys.readouterr().out
+
+
 def test_no_spread_launches_nothing_and_is_never_resolved(tmp_path, capsys):
     write_runs(
         tmp_path,

@@ -537,3 +537,31 @@ def test_stopped_and_unfinished_runs_are_listed(tmp_path):
     assert left["attention=standard,seed=1"] == ("stopped", "stopped at step 40")
     assert left["attention=standard,seed=2"] == ("no summary", "last logged at 8,192 tokens")
     assert [(c.completed, c.launched) for c in rep.cells] == [(1, 3)]
+
+
+def test_a_per_layer_familys_first_rows_are_the_last_layers_head_averages_without_all_zero_ones():
+    from ablate.report.render import headline_metrics
+    from ablate.report.table import MetricRow
+
+    names = [
+        f"drill_attention/layer{i}/{head}{cat}_{kind}"
+        for i in (0, 1)
+        for head in ("", "head0/")
+        for cat in ("filler", "lookalike", "other", "pair")
+        for kind in ("share", "signed")
+    ]
+    rows = [
+        MetricRow(
+            cell="c", metric=m, reference="c", mean=0.0 if "filler" in m else 0.3, no_spread="filler" in m
+        )
+        for m in names
+    ]
+    got = headline_metrics(names, rows)
+    assert got == [
+        "drill_attention/layer1/pair_share",
+        "drill_attention/layer1/pair_signed",
+        "drill_attention/layer1/lookalike_share",
+        "drill_attention/layer1/lookalike_signed",
+    ]
+    # a family without indices keeps its accuracy metrics first, as before
+    assert headline_metrics(["drill/auc", "drill/acc", "drill/tokens_to_half"])[0] == "drill/acc"

@@ -107,9 +107,34 @@ def family_of(metric: str) -> str:
     return "loss" if metric == LOSS else metric.split("/", 1)[0]
 
 
-def headline_metrics(metrics: list[str]) -> list[str]:
-    plain = [m for m in metrics if not re.search(r"\d", m)] or metrics
-    return sorted(plain, key=lambda m: ("acc" not in m.rsplit("/", 1)[-1], m))[:HEADLINE_PER_FAMILY]
+SHARE_ORDER = ("pair", "lookalike", "filler", "other")  # the drill attention probe's categories
+
+
+def headline_metrics(metrics: list[str], rows: list = ()) -> list[str]:
+    """A family's first rows: its metrics without a layer or head index; for a per-layer family,
+    the last layer's head averages (per-head values stay in the appendix). Metrics that are zero in
+    every cell (filler shares of a drill without filler) are left to the appendix."""
+    plain = [m for m in metrics if not re.search(r"\d", m)]
+    if not plain:
+        averaged = [m for m in metrics if "/head" not in m] or metrics
+        last = max(_layer(m) for m in averaged)
+        plain = [m for m in averaged if _layer(m) == last]
+    zero = {m for m in plain if all(r.mean == 0 and r.no_spread for r in rows if r.metric == m)}
+    plain = [m for m in plain if m not in zero or not rows] or plain
+
+    def order(m: str):
+        leaf = m.rsplit("/", 1)[-1]
+        share = next(
+            (i for i, name in enumerate(SHARE_ORDER) if leaf.startswith(name + "_")), len(SHARE_ORDER)
+        )
+        return ("acc" not in leaf, share, m)
+
+    return sorted(plain, key=order)[:HEADLINE_PER_FAMILY]
+
+
+def _layer(metric: str) -> int:
+    found = re.search(r"layer(\d+)", metric)
+    return int(found.group(1)) if found else -1
 
 
 def context_text(report: Report, cell: str, family: str) -> str:
@@ -158,7 +183,7 @@ def family_tables(report: Report) -> list[str]:
     metrics = list(dict.fromkeys(r.metric for r in report.rows))
     out = []
     for family in dict.fromkeys(family_of(m) for m in metrics):
-        chosen = headline_metrics([m for m in metrics if family_of(m) == family])
+        chosen = headline_metrics([m for m in metrics if family_of(m) == family], report.rows)
         body = [
             [f"`{r.metric}`", *row_cells(r), context_text(report, r.cell, family)]
             for m in chosen

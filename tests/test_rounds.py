@@ -167,3 +167,4 @@ def test_a_drill_grid_with_seed_rounds_through_the_real_commands(tmp_path, cache
     )
     assert report.returncode == 0, report.stderr[-2000:]
     assert "drill/auc" in report.stdout.splitlines()[0] and "two-stage t" in report.stdout
+    assert "the verdict above uses Stein's two-stage interval" in report.stdout  # the table's differ

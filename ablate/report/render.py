@@ -483,6 +483,11 @@ def console(report: Report, with_headline: bool = True) -> str:
     lines += ["  ".join(h.ljust(w) for h, w in zip(header, widths))]
     lines += ["  ".join(c.ljust(w) for c, w in zip(b, widths)) for b in body]
     lines.append(f"* baseline; {rounds_line(report)}")
+    if any(v.method == "two-stage t" for v in report.verdicts):
+        lines.append(
+            "the diff intervals in this table are paired t over all seeds; the verdict above uses Stein's "
+            "two-stage interval (the first stage's SD), the one that keeps its 95% under seed rounds"
+        )
     if report.left_out:
         lines.append(
             f"{len(report.left_out)} run(s) left out of the averages "

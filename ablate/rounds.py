@@ -58,7 +58,7 @@ def plan_total(verdicts: list, first_stage: list[int], resolution: float, cap: i
         elif max(values) == min(values):
             need, why = n0, "no spread in the first stage: no interval exists"
         else:
-            need = two_stage_total(values, resolution, 2**62)
+            need = two_stage_total(values, resolution, None)
             why = f"first-stage SD {_sd(values):.3g}"
         total = max(total, min(cap, need))
         capped = f" (the rule asks {need}; cap {cap})" if need > cap else ""

@@ -174,11 +174,11 @@ def seeds_needed_range(std: float, n: int, halfwidth: float, level: float = 0.95
 # --- seed rounds: Stein's two-stage design ---------------------------------------------------
 
 
-def two_stage_total(first_stage, halfwidth: float, cap: int, level: float = 0.95) -> int:
+def two_stage_total(first_stage, halfwidth: float, cap: int | None, level: float = 0.95) -> int:
     """Total seeds of Stein's (1945) two-stage design from the first stage's values (paired
     differences or effect contrasts, one per seed): with n0 values of sample SD s0,
 
-        N = max(n0, ceil((t_{q, n0-1} s0 / w)^2)),   at most ``cap``,
+        N = max(n0, ceil((t_{q, n0-1} s0 / w)^2)),   at most ``cap`` (None: no cap),
 
     so that the final interval (:func:`two_stage_interval`) has half-width at most w unless capped.
     Zero spread gives N = n0 (no interval exists; see :func:`two_stage_interval`)."""
@@ -191,7 +191,8 @@ def two_stage_total(first_stage, halfwidth: float, cap: int, level: float = 0.95
         raise ValueError(f"halfwidth must be finite and > 0, got {halfwidth}")
     s0 = float(d.std(ddof=1))
     needed = math.ceil((float(stats.t.ppf(q, n0 - 1)) * s0 / halfwidth) ** 2)
-    return int(min(max(cap, n0), max(n0, needed)))
+    total = max(n0, needed)
+    return int(total if cap is None else min(max(cap, n0), total))
 
 
 def two_stage_interval(values, n0: int, level: float = 0.95) -> tuple[float, float, float, float]:

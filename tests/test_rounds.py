@@ -41,6 +41,7 @@ def test_the_total_is_steins_formula_from_the_first_stage():
     s0 = np.std(first, ddof=1)
     expected = math.ceil((stats.t.ppf(0.975, 3) * s0 / 0.1) ** 2)
     assert two_stage_total(first, 0.1, 10**6) == expected
+    assert two_stage_total(first, 0.1, None) == expected  # no cap
     assert two_stage_total(first, 0.1, 32) == 32  # capped
     assert two_stage_total(first, 100.0, 32) == 4  # the first stage is enough
 

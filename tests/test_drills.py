@@ -19,7 +19,7 @@ from toy_corpus.drills import (
     DrillConfig,
     accuracy,
     elimination_level,
-    first_token_level,
+    group_level,
 )
 
 # A small setting per kind, so brute-force loops stay quick; the defaults are checked too.
@@ -254,7 +254,7 @@ def test_first_token_level_by_hand():
     assert two.copy_level == pytest.approx(7 / 12, abs=1e-12)
     # it is never below the blind guesser's level (knowing the group only helps)
     for g, n in ((2, 8), (3, 6), (4, 8)):
-        assert first_token_level(n, n, g, "permutation") >= elimination_level(n, n, "permutation")
+        assert group_level(n, n, g, "permutation") >= elimination_level(n, n, "permutation")
 
 
 def test_closed_forms_match_the_harmonic_numbers():

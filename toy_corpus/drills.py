@@ -26,7 +26,7 @@ does not read the query's second token, below):
 - noisy_recall: a guesser that reads the query's first token knows its look-alike group of g =
   lookalikes + 1 keys, and scores 1/(g - r) with r the group's keys already asked (permutation,
   cycles), 1/g under replacement; r is hypergeometric, so the level has a closed form
-  (``first_token_level``). It is at least the blind level (knowing the group only helps), and it is
+  (``group_level``). It is at least the blind level (knowing the group only helps), and it is
   the level to beat: above it, the answer depends on the second token, the one that tells a key
   from its look-alikes. A reader of the second token alone does as well only where second tokens
   repeat across groups as often as first tokens repeat inside them (the look-alike recipe's setting,
@@ -93,13 +93,7 @@ class DrillConfig:
         _check_int("filler_len", self.filler_len, 0)
         if self.min_pairs is not None:
             _check_int("min_pairs", self.min_pairs, 1)
-        noisy = self.kind == "noisy_recall"
-        _check_int(
-            "lookalikes",
-            self.lookalikes,
-            int(noisy),
-            "one look-alike (else the first token finds the key)" if noisy else None,
-        )
+        _check_int("lookalikes", self.lookalikes, 0)
         if self.kind in ("recall", "noisy_recall"):
             self._check_recall()
         if self.kind == "noisy_recall":
@@ -126,6 +120,7 @@ class DrillConfig:
             )
 
     def _check_noisy(self) -> None:
+        _check_int("lookalikes", self.lookalikes, 1, "one look-alike (else the first token finds the key)")
         g = self.lookalikes + 1
         n = self.n_pairs
         if n % g:
@@ -185,17 +180,17 @@ def query_order(rng: np.random.Generator, batch: int, n: int, q: int, sampling: 
 
 
 def elimination_level(n: int, q: int, sampling: str) -> float:
-    """Copy level of the query-blind guesser (module docstring)."""
-    if sampling == "replacement":
-        return 1.0 / n
-    return float(np.mean([1.0 / (n - (j % n)) for j in range(q)]))
+    """Copy level of the query-blind guesser (module docstring): the group reader whose group is
+    every key, so query j scores 1/(n - j) (``group_level`` with g = n)."""
+    return group_level(n, q, n, sampling)
 
 
-def first_token_level(n: int, q: int, g: int, sampling: str) -> float:
-    """Copy level of a guesser that reads the query's first token (so knows its look-alike group of
-    ``g`` keys) but not its second (module docstring): under replacement 1/g; under permutation query
-    j scores 1/(g - r), r the earlier queries in its group, hypergeometric over the j earlier keys
-    drawn from the other n - 1 (g - 1 of them in the group); cycles restart that count every n."""
+def group_level(n: int, q: int, g: int, sampling: str) -> float:
+    """Copy level of a guesser that knows the query's group of ``g`` keys but not which of them it
+    asks (noisy_recall: it reads the query's first token, not its second; module docstring): under
+    replacement 1/g; under permutation query j scores 1/(g - r), r the earlier queries in its group,
+    hypergeometric over the j earlier keys drawn from the other n - 1 (g - 1 of them in the group);
+    cycles restart that count every n."""
     if sampling == "replacement":
         return 1.0 / g
     total = 0.0
@@ -349,8 +344,9 @@ class _NoisyRecall(_Pairs):
         self.setup(cfg, self.filler0 + cfg.n_filler, 3 + cfg.filler_len)
 
     def level(self, m: int, q: int) -> float:
-        """The first-token reader's level (``first_token_level``), not the blind guesser's."""
-        return first_token_level(m, q, self.g, self.cfg.query_sampling)
+        """The first-token reader's level (``group_level`` with the look-alike group), not the
+        blind guesser's."""
+        return group_level(m, q, self.g, self.cfg.query_sampling)
 
     def keys(self, rng: np.random.Generator, batch: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """First tokens, second tokens and group ids ``[batch, n]``, pairs shuffled so look-alikes

@@ -17,6 +17,7 @@ from ablate.stats import kaplan_meier, mean_ci
 
 from .table import Report, budget_tokens
 from .verdicts import formation_family
+from .wording import count
 
 __all__ = [
     "interaction_plot",
@@ -106,7 +107,7 @@ def plot_val_loss(runs: list, path: Path, labels: dict[str, str]) -> list[str]:
             stacked.mean(axis=0),
             marker="o" if steps.size <= 20 else None,
             markersize=3,
-            label=f"{labels[cell]} ({n} seed{'s' if n != 1 else ''})",
+            label=f"{labels[cell]} ({count(n, 'seed')})",
         )
         ax.fill_between(steps, stacked.min(axis=0), stacked.max(axis=0), color=line.get_color(), alpha=0.2)
     ax.set_xlabel("tokens seen")

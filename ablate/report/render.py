@@ -120,7 +120,7 @@ def headline_metrics(metrics: list[str], rows: list = ()) -> list[str]:
         last = max(_layer(m) for m in averaged)
         plain = [m for m in averaged if _layer(m) == last]
     zero = {m for m in plain if all(r.mean == 0 and r.no_spread for r in rows if r.metric == m)}
-    plain = [m for m in plain if m not in zero or not rows] or plain
+    plain = [m for m in plain if m not in zero] or plain  # without rows every metric counts as zero
 
     def order(m: str):
         leaf = m.rsplit("/", 1)[-1]
@@ -210,7 +210,7 @@ def rounds_line(report: Report) -> str:
         if seeds and seeds == list(range(seeds[0], seeds[-1] + 1))
         else "seeds " + ", ".join(map(str, seeds))
     )
-    return f"{report.rounds} round{'s' if report.rounds != 1 else ''} ran ({span})"
+    return f"{wording.count(report.rounds, 'round')} ran ({span})"
 
 
 def fairness_lines(report: Report) -> list[str]:

@@ -14,6 +14,7 @@ from .table import Report, better_direction
 from .verdicts import Verdict
 
 __all__ = [
+    "count",
     "metric_words",
     "verdict_lines",
     "direction_text",
@@ -24,6 +25,11 @@ __all__ = [
 ]
 
 METRIC_WORDS = {"final_val_loss": "final validation loss"}
+
+
+def count(n: int, noun: str) -> str:
+    """``1 seed``, ``2 seeds``."""
+    return f"{n} {noun}{'' if n == 1 else 's'}"
 
 
 def metric_words(metric: str) -> str:
@@ -62,7 +68,7 @@ def comparison_text(v: Verdict) -> str:
     """``differential is worse than standard by 0.385 nats (95% CI 0.316 to 0.455; paired t, 4 seeds)``."""
     e, u = v.estimate, unit(v.estimate.metric)
     who, ref = _names(v)
-    seeds = f"{e.n} seed{'s' if e.n != 1 else ''}"
+    seeds = count(e.n, "seed")
     if e.status == "missing":
         return f"{who} against {ref}: no completed run of {', '.join(map(str, e.missing))}"
     if e.n == 0:
@@ -125,8 +131,8 @@ def drill_text(v: Verdict) -> list[str]:
         counts = "; ".join(f"{names[c]} {k} of {n}" for c, (k, n) in f.formed.items())
         text = f"Formed recall (reached halfway): {counts}"
         if f.only_cell is not None:
-            n = f.only_cell + f.only_reference
-            text += f"; they disagree on {n} seed{'s' if n != 1 else ''}, exact McNemar p = {f.p:.2g}"
+            disagree = count(f.only_cell + f.only_reference, "seed")
+            text += f"; they disagree on {disagree}, exact McNemar p = {f.p:.2g}"
         out.append(text + ".")
     if t is not None:
         names = cell_names(list(t.medians))
@@ -139,8 +145,7 @@ def drill_text(v: Verdict) -> list[str]:
         if t.cell_sooner is not None:
             who, ref = _names(v)
             text += (
-                f"; {who} sooner in {t.cell_sooner} seed{'' if t.cell_sooner == 1 else 's'}, "
-                f"{ref} sooner in {t.reference_sooner}, "
+                f"; {who} sooner in {count(t.cell_sooner, 'seed')}, {ref} sooner in {t.reference_sooner}, "
                 f"sign test p = {t.p:.2g}"
             )
         out.append(text + ".")
